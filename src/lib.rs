@@ -1,0 +1,46 @@
+//! # csgate
+//!
+//! A gateway for compressively sampled sensor streams. Battery-powered vibration and acoustic
+//! nodes send, for every window of `n` instants on their ADC grid, only `m << n` randomly chosen
+//! samples. csgate recovers each window by sparse recovery (`y = C Psi s`, solved by FISTA),
+//! stitches the windows by overlap-add into one continuous record per node and channel, and
+//! writes HDF5 records, spectral features and dashboard feeds.
+//!
+//! ```text
+//!  TCP / packet log ──► packet (decode, validate) ──► stream (reorder, gaps)
+//!        ──► solver (worker pool, FISTA over a basis) ──► stream::overlap_add (stitch)
+//!        ──► store (HDF5 record)  ──► features (spectra, peaks, fault frequencies)
+//! ```
+//!
+//! ## Module map
+//! - [`real`]: the floating-point scalar trait (`f32`, `f64`) the numerics are generic over.
+//! - [`basis`]: orthonormal DCT, real Fourier and Daubechies wavelet bases, planned per length.
+//! - [`solver`]: the sampling operator `A = C Psi` and the LASSO / constrained / exact solvers.
+//! - [`packet`]: the wire format, its codec, validation and packet-log files.
+//! - [`sim`]: the node simulator (machine models, scenarios).
+//! - [`sources`]: TCP ingest and packet-log replay sources.
+//! - [`stream`]: per-stream state: reorder buffer, gaps, overlap-add stitching.
+//! - [`store`]: HDF5 record files (behind the default-on `hdf5-store` feature).
+//! - [`pipeline`]: wiring of the stages, worker pool, shutdown.
+//! - [`features`]: spectra, peaks, machine fault frequencies, severity, trust.
+//!
+//! ## Cargo features
+//! - `hdf5-store` (default): HDF5 records through the system libhdf5. Without it the rest of
+//!   the crate builds and tests on a machine with no libhdf5.
+#![forbid(unsafe_code)]
+#![warn(missing_docs)]
+
+pub mod basis;
+pub mod features;
+pub mod packet;
+pub mod pipeline;
+pub mod real;
+pub mod sim;
+pub mod solver;
+pub mod sources;
+#[cfg(feature = "hdf5-store")]
+pub mod store;
+pub mod stream;
+
+/// The crate version, written into every record file.
+pub const VERSION: &str = env!("CARGO_PKG_VERSION");

@@ -1,0 +1,56 @@
+//! The `csgate` command line: parses arguments, sets up logging and hands off to the library.
+//! Each subcommand lives in its own file under `src/commands/`.
+
+use clap::{Parser, Subcommand};
+use std::process::ExitCode;
+
+mod commands;
+
+/// csgate: reconstruct compressively sampled vibration and acoustic sensor streams.
+#[derive(Debug, Parser)]
+#[command(name = "csgate", version, about, long_about = None)]
+struct Cli {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+enum Command {
+    /// Reconstruct a set of generated windows with the engine and print what it did.
+    Demo(commands::demo::DemoArgs),
+}
+
+fn main() -> ExitCode {
+    let cli = Cli::parse();
+    init_logging();
+    let result = match cli.command {
+        Command::Demo(args) => commands::demo::run(args),
+    };
+    match result {
+        Ok(code) => code,
+        Err(err) => {
+            if is_broken_pipe(&err) {
+                return ExitCode::SUCCESS;
+            }
+            eprintln!("csgate: error: {err:#}");
+            ExitCode::from(2)
+        }
+    }
+}
+
+fn init_logging() {
+    use tracing_subscriber::EnvFilter;
+    let filter = EnvFilter::try_from_env("CSGATE_LOG").unwrap_or_else(|_| EnvFilter::new("info"));
+    let _ = tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr)
+        .try_init();
+}
+
+/// A closed stdout (e.g. piping into `head`) is a normal end, not an error.
+fn is_broken_pipe(err: &anyhow::Error) -> bool {
+    err.chain().any(|e| {
+        e.downcast_ref::<std::io::Error>()
+            .is_some_and(|io| io.kind() == std::io::ErrorKind::BrokenPipe)
+    })
+}

@@ -1,0 +1,1 @@
+//! Sparse recovery of one window: the sampling operator and the solvers.
