@@ -1,0 +1,1 @@
+//! Integration tests: basis (filled in by its work).

@@ -1,0 +1,1 @@
+//! Integration tests: features (filled in by its work).

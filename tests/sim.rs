@@ -1,0 +1,1 @@
+//! Integration tests: sim (filled in by its work).

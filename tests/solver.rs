@@ -1,0 +1,1 @@
+//! Integration tests: solver (filled in by its work).

@@ -1,0 +1,1 @@
+//! Integration tests: store (filled in by its work).

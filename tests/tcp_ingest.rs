@@ -1,0 +1,1 @@
+//! Integration tests: tcp_ingest (filled in by its work).

@@ -1,0 +1,1 @@
+//! Integration tests: wire (filled in by its work).
