@@ -192,11 +192,16 @@ pub enum StitchItem {
     },
 }
 
-/// Periodic Hann of length `n`: `w[j] = 0.5 - 0.5 cos(2 pi j / n)` (as scipy's
-/// `get_window('hann', n)`).
+/// Periodic Hann of length `n`: `w[j] = 0.5 - 0.5 cos(2 pi j / n)`.
+///
+/// Evaluated as `0.5 + 0.5 cos(-pi + j * (2 pi / n))`, the same expression scipy's
+/// `get_window('hann', n)` evaluates, so the values agree to the last bit or so rather than
+/// differing by the rounding of another arrangement of the same formula.
 pub fn periodic_hann(n: usize) -> Vec<f64> {
+    use std::f64::consts::PI;
+    let step = 2.0 * PI / n as f64;
     (0..n)
-        .map(|j| 0.5 - 0.5 * (2.0 * std::f64::consts::PI * j as f64 / n as f64).cos())
+        .map(|j| 0.5 + 0.5 * (-PI + j as f64 * step).cos())
         .collect()
 }
 
@@ -522,5 +527,447 @@ impl Stitcher {
                 Run::Gap { start, len, reason } => StitchItem::Gap { start, len, reason },
             })
             .collect()
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// A deterministic test signal: two tones plus a small pseudo-random part, so that every
+    /// sample differs and a misplaced sample shows.
+    fn signal(len: usize) -> Vec<f64> {
+        let mut state: u64 = 0x2545_f491_4f6c_dd1d;
+        (0..len)
+            .map(|i| {
+                state = state
+                    .wrapping_mul(6_364_136_223_846_793_005)
+                    .wrapping_add(1_442_695_040_888_963_407);
+                let noise = (state >> 11) as f64 / (1u64 << 53) as f64 - 0.5;
+                let t = i as f64;
+                (0.3 * t).sin() + 0.5 * (0.071 * t + 1.0).cos() + 0.1 * noise
+            })
+            .collect()
+    }
+
+    fn cut(x: &[f64], start: usize, n: usize) -> Vec<f64> {
+        x[start..start + n].to_vec()
+    }
+
+    /// Flattens items into (position -> value) with NaN for gaps, checking that they are
+    /// contiguous from 0 and do not overlap.
+    fn flatten(items: &[StitchItem]) -> (Vec<f32>, Vec<(u64, u64, GapReason)>) {
+        let mut out = Vec::new();
+        let mut gaps = Vec::new();
+        for item in items {
+            match item {
+                StitchItem::Block { start, samples } => {
+                    assert_eq!(*start as usize, out.len(), "blocks contiguous");
+                    assert!(!samples.is_empty());
+                    out.extend_from_slice(samples);
+                }
+                StitchItem::Gap { start, len, reason } => {
+                    assert_eq!(*start as usize, out.len(), "gaps contiguous");
+                    assert!(*len > 0);
+                    out.extend(std::iter::repeat_n(f32::NAN, *len as usize));
+                    gaps.push((*start, *len, *reason));
+                }
+            }
+        }
+        (out, gaps)
+    }
+
+    // Periodic Hann N = 8, CHECK-VALUES 3.1 (= scipy.signal.get_window('hann', 8)).
+    const HANN8_PERIODIC: [f64; 8] = [
+        0.0,
+        0.14644660940672627,
+        0.5,
+        0.8535533905932737,
+        1.0,
+        0.8535533905932737,
+        0.5,
+        0.14644660940672627,
+    ];
+    // Symmetric Hann N = 8 (scipy.signal.windows.hann(8)), CHECK-VALUES 3.1.
+    const HANN8_SYMMETRIC_HALF: [f64; 4] = [
+        0.0,
+        0.18825509907063326,
+        0.6112604669781572,
+        0.9504844339512095,
+    ];
+
+    #[test]
+    fn periodic_hann_matches_scipy_values() {
+        let w = periodic_hann(8);
+        for (a, b) in w.iter().zip(HANN8_PERIODIC) {
+            assert!((a - b).abs() <= 1e-16, "{a} vs {b}");
+            assert!(*a >= 0.0);
+        }
+        let s = symmetric_hann(8);
+        for j in 0..4 {
+            assert!((s[j] - HANN8_SYMMETRIC_HALF[j]).abs() <= 1e-15);
+            assert!((s[7 - j] - HANN8_SYMMETRIC_HALF[j]).abs() <= 1e-15);
+        }
+    }
+
+    // COLA identities, CHECK-VALUES 3.2 (Allen 1977; Griffin & Lim 1984).
+    #[test]
+    fn periodic_hann_at_half_hop_sums_to_one() {
+        for s in overlap_add_sums(&periodic_hann(8), 4) {
+            assert_eq!(s, 1.0, "exactly 1 at N = 8");
+        }
+        // CHECK-VALUES 3.2 says "within 4.4e-16"; scipy's own worst case there is exactly
+        // 2^-51 = 4.44e-16 (two ulps of 1.0), so that is the bound asserted.
+        let bound = f64::EPSILON * 2.0;
+        for n in [1024, 4096] {
+            for s in overlap_add_sums(&periodic_hann(n), n / 2) {
+                assert!((s - 1.0).abs() <= bound, "N = {n}: {s}");
+            }
+        }
+    }
+
+    #[test]
+    fn symmetric_hann_is_not_cola() {
+        let sums = overlap_add_sums(&symmetric_hann(8), 4);
+        let (lo, hi) = min_max(&sums);
+        // CHECK-VALUES 3.2: 0.7995..0.9505 at N = 8.
+        assert!(
+            (lo - 0.7995).abs() < 1e-4 && (hi - 0.9505).abs() < 1e-4,
+            "{lo} {hi}"
+        );
+        let sums = overlap_add_sums(&symmetric_hann(1024), 512);
+        let (lo, hi) = min_max(&sums);
+        // CHECK-VALUES 3.2: 0.99846..0.999998 at N = 1024.
+        assert!(
+            (lo - 0.99846).abs() < 1e-5 && (hi - 0.999998).abs() < 1e-6,
+            "{lo} {hi}"
+        );
+    }
+
+    #[test]
+    fn sqrt_hann_pair_product_is_cola_but_the_root_is_not() {
+        let w = periodic_hann(1024);
+        let root: Vec<f64> = w.iter().map(|v| v.sqrt()).collect();
+        let product: Vec<f64> = root.iter().map(|r| r * r).collect();
+        for s in overlap_add_sums(&product, 512) {
+            // 2^-51, as in periodic_hann_at_half_hop_sums_to_one.
+            assert!((s - 1.0).abs() <= 2.0 * f64::EPSILON, "{s}");
+        }
+        let (lo, hi) = min_max(&overlap_add_sums(&root, 512));
+        assert!(hi - lo > 0.1, "sqrt-Hann alone is not COLA: {lo}..{hi}");
+    }
+
+    #[test]
+    fn hann_hann_needs_quarter_hop_and_sums_to_one_and_a_half() {
+        let n = 1024;
+        let w = periodic_hann(n);
+        let sq: Vec<f64> = w.iter().map(|v| v * v).collect();
+        let (lo, hi) = min_max(&overlap_add_sums(&sq, n / 2));
+        // CHECK-VALUES 3.2: sum w^2 swings 0.5..1.0 at hop N/2.
+        assert!(
+            (lo - 0.5).abs() < 1e-12 && (hi - 1.0).abs() < 1e-12,
+            "{lo} {hi}"
+        );
+        for s in overlap_add_sums(&sq, n / 4) {
+            assert!((s - 1.5).abs() < 1e-14, "{s}");
+        }
+        for s in overlap_add_sums(&w, n / 4) {
+            assert!((s - 2.0).abs() < 1e-14, "{s}");
+        }
+    }
+
+    fn min_max(v: &[f64]) -> (f64, f64) {
+        v.iter()
+            .fold((f64::INFINITY, f64::NEG_INFINITY), |(a, b), &x| {
+                (a.min(x), b.max(x))
+            })
+    }
+
+    #[test]
+    fn construction_checks_the_hop() {
+        let bad = |n, hop| {
+            Stitcher::new(StitchConfig {
+                window_len: n,
+                hop_len: hop,
+                window: SynthesisWindow::Hann,
+            })
+            .unwrap_err()
+        };
+        assert_eq!(
+            bad(8, 3),
+            StitchError::HopNotCola {
+                window_len: 8,
+                hop: 3
+            }
+        );
+        assert!(matches!(bad(8, 8), StitchError::HopNotCola { .. }));
+        assert!(matches!(bad(8, 0), StitchError::HopNotCola { .. }));
+        for hop in [4, 2, 1] {
+            assert!(Stitcher::new(StitchConfig {
+                window_len: 8,
+                hop_len: hop,
+                window: SynthesisWindow::SqrtHannPair,
+            })
+            .is_ok());
+        }
+    }
+
+    /// Runs the identity "solver" through the f64 path and returns every emitted value.
+    fn stitch_identity_f64(x: &[f64], config: StitchConfig, windows: usize) -> Vec<f64> {
+        let mut st = Stitcher::new(config).unwrap();
+        let (n, hop) = (config.window_len, config.hop_len);
+        let mut runs = Vec::new();
+        for k in 0..windows {
+            runs.extend(
+                st.push_inner(k as u64 * hop as u64, Some(&cut(x, k * hop, n)))
+                    .unwrap(),
+            );
+        }
+        let end = st.end;
+        runs.extend(st.emit_upto(end));
+        let mut out = Vec::new();
+        for run in runs {
+            match run {
+                Run::Values { start, values } => {
+                    assert_eq!(start as usize, out.len());
+                    out.extend(values);
+                }
+                Run::Gap { .. } => panic!("no gaps expected"),
+            }
+        }
+        out
+    }
+
+    #[test]
+    fn identity_windows_come_back_exactly_in_f64() {
+        for (n, hop) in [(64, 32), (64, 16), (1024, 512), (8, 4)] {
+            let windows = 9;
+            let total = (windows - 1) * hop + n;
+            let x = signal(total);
+            let out = stitch_identity_f64(
+                &x,
+                StitchConfig {
+                    window_len: n,
+                    hop_len: hop,
+                    window: SynthesisWindow::Hann,
+                },
+                windows,
+            );
+            assert_eq!(out.len(), total, "n {n} hop {hop}: capture edges included");
+            for (p, (a, b)) in out.iter().zip(&x).enumerate() {
+                assert!((a - b).abs() <= 1e-12, "n {n} hop {hop} p {p}: {a} vs {b}");
+            }
+        }
+    }
+
+    #[test]
+    fn identity_windows_come_back_in_f32_across_boundaries_and_edges() {
+        let (n, hop, windows) = (256, 128, 12);
+        let total = (windows - 1) * hop + n;
+        let x = signal(total);
+        let mut st = Stitcher::new(StitchConfig::half_overlap(n)).unwrap();
+        let mut items = Vec::new();
+        for k in 0..windows {
+            let w: Vec<f32> = cut(&x, k * hop, n).iter().map(|&v| v as f32).collect();
+            let got = st.push_window(k as u64 * hop as u64, &w).unwrap();
+            // Only samples before the next window's start may be final.
+            for item in &got {
+                if let StitchItem::Block { start, samples } = item {
+                    assert!(*start as usize + samples.len() <= (k + 1) * hop);
+                }
+            }
+            items.extend(got);
+        }
+        items.extend(st.finish());
+        let (out, gaps) = flatten(&items);
+        assert!(gaps.is_empty());
+        assert_eq!(out.len(), total);
+        for (p, (a, b)) in out.iter().zip(&x).enumerate() {
+            assert!((*a as f64 - b).abs() <= 1e-6, "p {p}: {a} vs {b}");
+        }
+        // The first and last half-windows are the single covering window's values, untapered.
+        assert_eq!(out[0], x[0] as f32);
+        assert_eq!(out[total - 1], x[total - 1] as f32);
+    }
+
+    #[test]
+    fn sqrt_hann_pair_returns_analysis_tapered_input_except_the_zero_weight_sample() {
+        let (n, hop, windows) = (64, 32, 6);
+        let total = (windows - 1) * hop + n;
+        let x = signal(total);
+        let root: Vec<f64> = periodic_hann(n).iter().map(|v| v.sqrt()).collect();
+        let mut st = Stitcher::new(StitchConfig {
+            window_len: n,
+            hop_len: hop,
+            window: SynthesisWindow::SqrtHannPair,
+        })
+        .unwrap();
+        let mut items = Vec::new();
+        for k in 0..windows {
+            let w: Vec<f64> = (0..n).map(|j| root[j] * x[k * hop + j]).collect();
+            items.extend(st.push_window(k as u64 * hop as u64, &w).unwrap());
+        }
+        items.extend(st.finish());
+        let (out, gaps) = flatten(&items);
+        assert_eq!(gaps, vec![(0, 1, GapReason::ZeroWeight)]);
+        for p in 1..total {
+            assert!((out[p] as f64 - x[p]).abs() <= 1e-6, "p {p}");
+        }
+    }
+
+    fn run_with_missing(
+        n: usize,
+        hop: usize,
+        windows: usize,
+        missing: &[(usize, Option<GapReason>)],
+    ) -> (Vec<f64>, Vec<f32>, Vec<(u64, u64, GapReason)>) {
+        let total = (windows - 1) * hop + n;
+        let x = signal(total);
+        let mut st = Stitcher::new(StitchConfig {
+            window_len: n,
+            hop_len: hop,
+            window: SynthesisWindow::Hann,
+        })
+        .unwrap();
+        let mut items = Vec::new();
+        for k in 0..windows {
+            let start = (k * hop) as u64;
+            match missing.iter().find(|(m, _)| *m == k) {
+                Some((_, Some(reason))) => items.extend(st.push_missing(start, *reason).unwrap()),
+                Some((_, None)) => {} // skipped: the next start jumps
+                None => items.extend(st.push_window(start, &cut(&x, k * hop, n)).unwrap()),
+            }
+        }
+        items.extend(st.finish());
+        let (out, gaps) = flatten(&items);
+        (x, out, gaps)
+    }
+
+    fn assert_equal_outside(x: &[f64], out: &[f32], gaps: &[(u64, u64, GapReason)]) {
+        for (p, v) in out.iter().enumerate() {
+            let in_gap = gaps
+                .iter()
+                .any(|&(s, l, _)| (p as u64) >= s && (p as u64) < s + l);
+            if in_gap {
+                assert!(v.is_nan(), "p {p} should be NaN");
+            } else {
+                assert!((*v as f64 - x[p]).abs() <= 1e-6, "p {p}: {v} vs {}", x[p]);
+            }
+        }
+    }
+
+    #[test]
+    fn one_missing_window_is_covered_by_its_neighbours() {
+        // n 8, hop 4: window 2 spans 8..16; window 1 covers 4..12 and window 3 covers 12..20.
+        let (x, out, gaps) = run_with_missing(8, 4, 6, &[(2, Some(GapReason::WindowMissing))]);
+        assert!(gaps.is_empty());
+        assert_eq!(out.len(), x.len());
+        assert_equal_outside(&x, &out, &gaps);
+    }
+
+    #[test]
+    fn two_missing_windows_leave_a_gap_of_the_uncovered_samples_only() {
+        // Windows 2 (8..16) and 3 (12..20) missing: window 1 ends at 12, window 4 starts at
+        // 16, so 12..16 is uncovered; 8..12 and 16..20 come from one window each.
+        let (x, out, gaps) = run_with_missing(
+            8,
+            4,
+            7,
+            &[
+                (2, Some(GapReason::WindowRejected)),
+                (3, Some(GapReason::WindowRejected)),
+            ],
+        );
+        assert_eq!(gaps, vec![(12, 4, GapReason::WindowRejected)]);
+        assert_eq!(out.len(), x.len());
+        assert_equal_outside(&x, &out, &gaps);
+    }
+
+    #[test]
+    fn skipped_windows_become_one_gap_of_reason_window_missing() {
+        // Windows 2..=9 skipped at n 8, hop 4: window 1 ends at 12, window 10 starts at 40.
+        let skipped: Vec<(usize, Option<GapReason>)> = (2..=9).map(|k| (k, None)).collect();
+        let (x, out, gaps) = run_with_missing(8, 4, 12, &skipped);
+        assert_eq!(gaps, vec![(12, 28, GapReason::WindowMissing)]);
+        assert_equal_outside(&x, &out, &gaps);
+    }
+
+    #[test]
+    fn missing_first_and_last_windows_give_gaps_at_the_capture_edges() {
+        // Window 0 (0..8) missing: 0..4 uncovered. Last window 5 (20..28) missing: window 4
+        // ends at 24, so 24..28 is uncovered and finish() reports it.
+        let (x, out, gaps) = run_with_missing(
+            8,
+            4,
+            6,
+            &[
+                (0, Some(GapReason::CaptureRestart)),
+                (5, Some(GapReason::WindowMissing)),
+            ],
+        );
+        assert_eq!(
+            gaps,
+            vec![
+                (0, 4, GapReason::CaptureRestart),
+                (24, 4, GapReason::WindowMissing)
+            ]
+        );
+        assert_eq!(out.len(), 28);
+        assert_equal_outside(&x, &out, &gaps);
+    }
+
+    #[test]
+    fn contract_violations_are_typed_errors() {
+        let mut st = Stitcher::new(StitchConfig::half_overlap(8)).unwrap();
+        assert_eq!(
+            st.push_window(3, &[0.0f32; 8]).unwrap_err(),
+            StitchError::Misaligned { start: 3, hop: 4 }
+        );
+        assert_eq!(
+            st.push_window(0, &[0.0f32; 7]).unwrap_err(),
+            StitchError::WrongLength {
+                expected: 8,
+                got: 7
+            }
+        );
+        st.push_window(4, &[1.0f32; 8]).unwrap();
+        assert_eq!(
+            st.push_window(4, &[1.0f32; 8]).unwrap_err(),
+            StitchError::OutOfOrder {
+                start: 4,
+                expected: 8
+            }
+        );
+    }
+
+    #[test]
+    fn finish_resets_for_the_next_capture() {
+        let mut st = Stitcher::new(StitchConfig::half_overlap(8)).unwrap();
+        st.push_window(0, &[2.0f32; 8]).unwrap();
+        let tail = st.finish();
+        assert_eq!(
+            tail,
+            vec![StitchItem::Block {
+                start: 4,
+                samples: vec![2.0; 4]
+            }]
+        );
+        assert_eq!(st.next_start(), 0);
+        let again = st.push_window(0, &[3.0f32; 8]).unwrap();
+        assert_eq!(
+            again,
+            vec![StitchItem::Block {
+                start: 0,
+                samples: vec![3.0; 4]
+            }]
+        );
+    }
+
+    #[test]
+    fn gap_reason_codes_round_trip() {
+        for code in 0..=5u8 {
+            assert_eq!(GapReason::from_code(code).unwrap().code(), code);
+        }
+        assert_eq!(GapReason::from_code(6), None);
     }
 }
