@@ -148,7 +148,8 @@ pub struct StreamEntry {
     pub samples: u64,
     /// Time of the file's first sample of this stream, Unix nanoseconds.
     pub start_time_unix_ns: i64,
-    /// Time just after the last sample (start of the next grid instant), Unix nanoseconds.
+    /// Time of the grid instant after the last sample, Unix nanoseconds (equals the next
+    /// file's `start_time_unix_ns` when the capture continues there).
     pub end_time_unix_ns: i64,
 }
 
@@ -460,8 +461,12 @@ impl SinkState {
                     let meta = writer.meta(key).expect("stream of this writer");
                     let samples = writer.sample_count(key).unwrap_or(0);
                     let start = writer.time_of_index(key, 0).unwrap_or(0);
-                    let end = match writer.time_of_index(key, samples.saturating_sub(1)) {
-                        Some(t) if samples > 0 => grid_time(t, 1, meta.sample_rate_hz),
+                    // On the capture grid, like every time in the record, so that the next
+                    // file's start equals this end to the nanosecond.
+                    let end = match writer.cursor(key) {
+                        Some(c) if samples > 0 => {
+                            grid_time(c.capture_t0_unix_ns, c.next_position, meta.sample_rate_hz)
+                        }
                         _ => start,
                     };
                     StreamEntry {
