@@ -1,5 +1,6 @@
 //! Integration tests: the HDF5 record store (layout round trip, gaps and segments, the writer
 //! thread with rotation and the index, and a SIGKILL of a writing process).
+#![cfg(feature = "hdf5-store")]
 
 use crate::util::test_dir;
 use csgate::store::layout::{self, stop_reason};

@@ -221,6 +221,9 @@ pub struct RecordSink {
 
 impl RecordSink {
     /// Starts the writer thread. Setup errors (folder, index) come back through the handle.
+    ///
+    /// # Panics
+    /// If the OS refuses to start a thread.
     pub fn spawn(config: SinkConfig) -> (Self, JoinHandle<Result<SinkStats, StoreError>>) {
         let (tx, rx) = mpsc::sync_channel(config.channel_capacity.max(1));
         let handle = std::thread::Builder::new()

@@ -550,13 +550,16 @@ mod tests {
             .collect()
     }
 
+    /// (start, len, reason) of a gap item.
+    type GapSpan = (u64, u64, GapReason);
+
     fn cut(x: &[f64], start: usize, n: usize) -> Vec<f64> {
         x[start..start + n].to_vec()
     }
 
     /// Flattens items into (position -> value) with NaN for gaps, checking that they are
     /// contiguous from 0 and do not overlap.
-    fn flatten(items: &[StitchItem]) -> (Vec<f32>, Vec<(u64, u64, GapReason)>) {
+    fn flatten(items: &[StitchItem]) -> (Vec<f32>, Vec<GapSpan>) {
         let mut out = Vec::new();
         let mut gaps = Vec::new();
         for item in items {
@@ -820,7 +823,7 @@ mod tests {
         hop: usize,
         windows: usize,
         missing: &[(usize, Option<GapReason>)],
-    ) -> (Vec<f64>, Vec<f32>, Vec<(u64, u64, GapReason)>) {
+    ) -> (Vec<f64>, Vec<f32>, Vec<GapSpan>) {
         let total = (windows - 1) * hop + n;
         let x = signal(total);
         let mut st = Stitcher::new(StitchConfig {
@@ -843,7 +846,7 @@ mod tests {
         (x, out, gaps)
     }
 
-    fn assert_equal_outside(x: &[f64], out: &[f32], gaps: &[(u64, u64, GapReason)]) {
+    fn assert_equal_outside(x: &[f64], out: &[f32], gaps: &[GapSpan]) {
         for (p, v) in out.iter().enumerate() {
             let in_gap = gaps
                 .iter()
