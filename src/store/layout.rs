@@ -72,7 +72,7 @@ pub mod stop_reason {
     pub const EXACT: u8 = 5;
 }
 
-/// `trust` codes of a [`WindowRow`] and [`IndicatorRow::low_trust`] companions.
+/// `trust` codes of a [`WindowRow`].
 pub mod trust {
     /// Not assessed (written until the trust figures exist).
     pub const UNKNOWN: u8 = 0;
