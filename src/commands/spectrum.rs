@@ -9,7 +9,9 @@
 
 use anyhow::{bail, Context};
 use clap::Args;
-use csgate::features::peaks::{amplitude_db, detect_peaks, prominent_peaks, Interpolation, PeakConfig};
+use csgate::features::peaks::{
+    amplitude_db, detect_peaks, prominent_peaks, Interpolation, PeakConfig,
+};
 use csgate::features::spectrum::{WelchConfig, WelchPlan};
 use realfft::RealFftPlanner;
 use serde::Serialize;
@@ -71,9 +73,14 @@ struct Output<'a> {
 
 /// Runs the command.
 pub fn run(args: SpectrumArgs) -> anyhow::Result<ExitCode> {
-    let x = read_signal(&args.input).with_context(|| format!("reading {}", args.input.display()))?;
+    let x =
+        read_signal(&args.input).with_context(|| format!("reading {}", args.input.display()))?;
     if x.len() < 4 {
-        bail!("{}: need at least 4 samples, got {}", args.input.display(), x.len());
+        bail!(
+            "{}: need at least 4 samples, got {}",
+            args.input.display(),
+            x.len()
+        );
     }
     if !(args.fs > 0.0 && args.fs.is_finite()) {
         bail!("--fs must be a positive sample rate, got {}", args.fs);
@@ -127,7 +134,10 @@ pub fn run(args: SpectrumArgs) -> anyhow::Result<ExitCode> {
             "# {} samples at {} Hz; Welch Hann, nperseg {}, noverlap {}, {} segments, {} Hz bins",
             out.samples, out.sample_rate_hz, out.nperseg, out.noverlap, out.segments, out.bin_hz
         )?;
-        writeln!(w, "# peaks (largest first): freq_hz amplitude(peak) level_db prominence_db snr_db")?;
+        writeln!(
+            w,
+            "# peaks (largest first): freq_hz amplitude(peak) level_db prominence_db snr_db"
+        )?;
         for p in &out.peaks {
             writeln!(
                 w,

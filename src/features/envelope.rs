@@ -52,12 +52,13 @@ pub enum EnvelopeBand {
 impl Default for EnvelopeBand {
     fn default() -> Self {
         // Level 4 at 25.6 kHz is 800 Hz wide; 500 Hz leaves room for BPFI with ±1X sidebands on
-        // most machines. 256-sample STFT frames (10 ms at 25.6 kHz) are shorter than the gap
-        // between bearing impacts, as SK needs, with 100 Hz resolution.
+        // most machines. SK only sees impacts when a frame is shorter than the gap between them
+        // (Antoni 2006): 128 samples (5 ms at 25.6 kHz, 200 Hz bins) stays below the 6 ms gap
+        // of a 160 Hz BPFI; 256-sample frames measured almost no SK on such a signal.
         EnvelopeBand::Auto {
             max_level: 4,
             min_bandwidth_hz: 500.0,
-            stft_len: 256,
+            stft_len: 128,
         }
     }
 }
@@ -161,7 +162,8 @@ impl SpectralKurtosisPlan {
     }
 
     /// Spectral kurtosis of `x` per STFT bin (bin `k` at `k fs / len`); frames every `len/4`.
-    /// Bins with no energy read 0.
+    /// Bins with no energy read 0; 0 is also the value for stationary Gaussian noise in every
+    /// bin, DC and Nyquist included.
     pub fn estimate(&mut self, x: &[f64]) -> Result<&[f64], FeatureError> {
         if x.len() < self.len {
             return Err(FeatureError::TooShort {
@@ -188,10 +190,22 @@ impl SpectralKurtosisPlan {
             }
         }
         let nf = frames as f64;
-        for (s2, s4) in self.s2.iter_mut().zip(&self.s4) {
+        let last = self.len / 2;
+        for (k, (s2, s4)) in self.s2.iter_mut().zip(&self.s4).enumerate() {
             let m2 = *s2 / nf;
             let m4 = s4 / nf;
-            *s2 = if m2 > 0.0 { m4 / (m2 * m2) - 2.0 } else { 0.0 };
+            // DC and (even-length) Nyquist bins are real: Gaussian noise gives m4/m2² = 3 there,
+            // not 2, so subtract 3 to keep SK = 0 for noise in every bin.
+            let gaussian = if k == 0 || (self.len % 2 == 0 && k == last) {
+                3.0
+            } else {
+                2.0
+            };
+            *s2 = if m2 > 0.0 {
+                m4 / (m2 * m2) - gaussian
+            } else {
+                0.0
+            };
         }
         Ok(&self.s2)
     }
