@@ -3,7 +3,9 @@
 //! choice + envelope spectrum + peaks, overall indicators and velocity RMS). The time per
 //! iteration is the CPU cost of one second of one stream.
 //!
-//! Run: `cargo bench --bench features`.
+//! Run: `cargo bench --bench features`. Measured on the 2-core development machine while other
+//! builds ran (load about 4): 6.4 ms per 1 s block with the automatic band, 4.3 ms with a fixed
+//! band, 1.5 ms without the envelope, 0.32 ms for the Welch spectrum alone.
 
 use criterion::{criterion_group, criterion_main, Criterion, Throughput};
 use csgate::features::envelope::{EnvelopeBand, EnvelopeConfig};
@@ -25,7 +27,9 @@ fn signal() -> Vec<f32> {
     let mut x: Vec<f64> = (0..FS as usize)
         .map(|j| {
             let t = j as f64 / FS;
-            2.0 * (2.0 * PI * 29.95 * t).sin() + 0.8 * (2.0 * PI * 59.9 * t).sin() + noise.sample(&mut rng)
+            2.0 * (2.0 * PI * 29.95 * t).sin()
+                + 0.8 * (2.0 * PI * 59.9 * t).sin()
+                + noise.sample(&mut rng)
         })
         .collect();
     let period = 1.0 / 107.364306;
@@ -93,7 +97,9 @@ fn bench(c: &mut Criterion) {
     });
 
     let mut welch = WelchPlan::new(&WelchConfig::default(), &mut RealFftPlanner::new()).unwrap();
-    g.bench_function("welch_only", |b| b.iter(|| black_box(welch.estimate(black_box(&x), FS).unwrap())));
+    g.bench_function("welch_only", |b| {
+        b.iter(|| black_box(welch.estimate(black_box(&x), FS).unwrap()))
+    });
     g.finish();
 }
 
