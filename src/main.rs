@@ -18,6 +18,8 @@ struct Cli {
 enum Command {
     /// Reconstruct a set of generated windows with the engine and print what it did.
     Demo(commands::demo::DemoArgs),
+    /// Welch spectrum and peaks of a signal file (text, one value per line; or raw .f32/.f64).
+    Spectrum(commands::spectrum::SpectrumArgs),
 }
 
 fn main() -> ExitCode {
@@ -25,6 +27,7 @@ fn main() -> ExitCode {
     init_logging();
     let result = match cli.command {
         Command::Demo(args) => commands::demo::run(args),
+        Command::Spectrum(args) => commands::spectrum::run(args),
     };
     match result {
         Ok(code) => code,
