@@ -18,6 +18,8 @@ struct Cli {
 enum Command {
     /// Reconstruct a set of generated windows with the engine and print what it did.
     Demo(commands::demo::DemoArgs),
+    /// Reconstruct one window given as JSON and write the coefficients, signal and report.
+    Solve(commands::solve::SolveArgs),
 }
 
 fn main() -> ExitCode {
@@ -25,6 +27,7 @@ fn main() -> ExitCode {
     init_logging();
     let result = match cli.command {
         Command::Demo(args) => commands::demo::run(args),
+        Command::Solve(args) => commands::solve::run(args),
     };
     match result {
         Ok(code) => code,
