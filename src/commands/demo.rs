@@ -8,7 +8,7 @@
 use anyhow::Context;
 use clap::Args;
 use csgate::basis::{BasisKind, BasisPlanner};
-use csgate::solver::{Form, SolveReport, SolveSettings, Solver};
+use csgate::solver::{Form, LambdaRule, SigmaRule, SolveReport, SolveSettings, Solver};
 use rand::rngs::StdRng;
 use rand::SeedableRng;
 use rand_distr::{Distribution, Normal};
@@ -35,6 +35,13 @@ pub struct DemoArgs {
     /// Random seed of the signal, the noise and the sampling instants.
     #[arg(long, default_value_t = 7)]
     pub seed: u64,
+    /// Standard deviation of the broadband noise added to the stream.
+    #[arg(long, default_value_t = 0.01)]
+    pub noise: f64,
+    /// Estimate the noise level from each window (residual rule) instead of using `--noise`
+    /// as the node's known noise floor in the universal threshold.
+    #[arg(long)]
+    pub estimate_noise: bool,
     /// Print the figures as JSON instead of a table.
     #[arg(long)]
     pub json: bool,
@@ -111,7 +118,11 @@ pub fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
     let hop = n / 2;
     let m = ((args.ratio * n as f64).round() as usize).clamp(1, n);
     let mut rng = StdRng::seed_from_u64(args.seed);
-    let noise = Normal::new(0.0, 0.01).expect("valid deviation");
+    anyhow::ensure!(
+        args.noise.is_finite() && args.noise > 0.0,
+        "--noise must be positive"
+    );
+    let noise = Normal::new(0.0, args.noise).expect("valid deviation");
 
     let total = hop * args.windows + n;
     let tones = machine_tones();
@@ -126,7 +137,17 @@ pub fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
         .collect();
     let measured: Vec<f64> = truth.iter().map(|&v| v + noise.sample(&mut rng)).collect();
 
-    let settings = SolveSettings::default();
+    let sigma = if args.estimate_noise {
+        SigmaRule::Residual
+    } else {
+        SigmaRule::Given(args.noise)
+    };
+    let settings = SolveSettings {
+        form: Form::Lasso {
+            lambda: LambdaRule::Universal { sigma },
+        },
+        ..SolveSettings::default()
+    };
     let baseline = SolveSettings {
         form: Form::MinL2,
         debias: false,

@@ -760,10 +760,12 @@ fn constrained<T: Real, O: LinearOperator<T> + ?Sized>(
     report.stop = StopReason::IterationCap;
 }
 
-/// [`Form::Exact`]: continuation `lambda_j = lambda_max 0.5 * 0.2^j` down to
-/// `1e-9 lambda_max`, warm-started; after each stage whose support size has settled (or the
+/// [`Form::Exact`]: continuation `lambda_j = lambda_max 0.5 * 0.1^j` down to
+/// `1e-8 lambda_max`, warm-started; after each stage whose support size has settled (or the
 /// last), a least-squares refit on the support is tried and accepted once its relative residual
-/// is within `exact_tol`. Returns the refit; `s` keeps the last LASSO solution.
+/// is within `exact_tol`. Intermediate stages are capped at 500 iterations: they only have to
+/// bring the support close, the warm start carries the rest and the refit does the polishing;
+/// the last stage gets the full `max_iter`. Returns the refit; `s` keeps the last LASSO solution.
 #[allow(clippy::too_many_arguments)]
 fn exact<T: Real, O: LinearOperator<T> + ?Sized>(
     op: &mut O,
@@ -777,14 +779,19 @@ fn exact<T: Real, O: LinearOperator<T> + ?Sized>(
     ws: &mut Workspace<T>,
 ) -> Vec<T> {
     let m = op.rows();
-    let floor = lambda_max.to_f64_() * 1e-9;
+    let floor = lambda_max.to_f64_() * 1e-8;
     let mut lambda = lambda_max.to_f64_() * 0.5;
     let mut previous_support = usize::MAX;
     let mut refit = s.to_vec();
     let cg_steps = settings.debias_cg_steps.max(50);
+    let stage = FistaOptions {
+        max_iter: options.max_iter.min(500),
+        ..*options
+    };
     loop {
-        let out = run_lasso(op, y, T::of(lambda), lambda_max, options, s, report, ws);
         let last = lambda <= floor;
+        let opts = if last { options } else { &stage };
+        let out = run_lasso(op, y, T::of(lambda), lambda_max, opts, s, report, ws);
         let support = report.support;
         if support > 0 && support <= m && (support == previous_support || last) {
             refit.copy_from_slice(s);
@@ -815,7 +822,7 @@ fn exact<T: Real, O: LinearOperator<T> + ?Sized>(
             return refit;
         }
         previous_support = support;
-        lambda = (lambda * 0.2).max(floor);
+        lambda = (lambda * 0.1).max(floor);
     }
 }
 
