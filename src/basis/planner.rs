@@ -4,8 +4,9 @@
 //! twiddles and FFT plans, so it happens once per (kind, length) and the result is shared as
 //! an `Arc` (RustFFT's planner does the same for FFTs).
 
-use super::{BasisError, BasisKind, Dct, SharedBasis};
+use super::{BasisError, BasisKind, Daubechies, Dct, RealFourier, SharedBasis};
 use crate::real::Real;
+use realfft::RealFftPlanner;
 use rustfft::FftPlanner;
 use std::collections::HashMap;
 use std::fmt;
@@ -20,6 +21,7 @@ pub struct BasisPlanner<T: Real> {
 struct Inner<T: Real> {
     cache: HashMap<(BasisKind, usize), SharedBasis<T>>,
     fft: FftPlanner<T>,
+    rfft: RealFftPlanner<T>,
 }
 
 impl<T: Real> Default for BasisPlanner<T> {
@@ -44,6 +46,7 @@ impl<T: Real> BasisPlanner<T> {
             inner: Mutex::new(Inner {
                 cache: HashMap::new(),
                 fft: FftPlanner::new(),
+                rfft: RealFftPlanner::new(),
             }),
         }
     }
@@ -59,7 +62,8 @@ impl<T: Real> BasisPlanner<T> {
         if let Some(b) = inner.cache.get(&(kind, len)) {
             return Ok(Arc::clone(b));
         }
-        let basis = build(kind, len, &mut inner.fft)?;
+        let Inner { fft, rfft, .. } = &mut *inner;
+        let basis = build(kind, len, fft, rfft)?;
         inner.cache.insert((kind, len), Arc::clone(&basis));
         Ok(basis)
     }
@@ -70,22 +74,23 @@ impl<T: Real> BasisPlanner<T> {
 /// # Errors
 /// [`BasisError::BadLength`] if `len` does not suit the basis (see each basis's docs).
 pub fn plan_basis<T: Real>(kind: BasisKind, len: usize) -> Result<SharedBasis<T>, BasisError> {
-    build(kind, len, &mut FftPlanner::new())
+    build(
+        kind,
+        len,
+        &mut FftPlanner::new(),
+        &mut RealFftPlanner::new(),
+    )
 }
 
 fn build<T: Real>(
     kind: BasisKind,
     len: usize,
     fft: &mut FftPlanner<T>,
+    rfft: &mut RealFftPlanner<T>,
 ) -> Result<SharedBasis<T>, BasisError> {
     Ok(match kind {
         BasisKind::Dct => Arc::new(Dct::with_planner(len, fft)?),
-        _ => {
-            return Err(BasisError::BadLength {
-                kind,
-                len,
-                why: "not implemented yet".into(),
-            })
-        }
+        BasisKind::Fourier => Arc::new(RealFourier::with_planner(len, rfft)?),
+        BasisKind::Daubechies { order, levels } => Arc::new(Daubechies::new(order, levels, len)?),
     })
 }
