@@ -18,7 +18,9 @@ use rand_distr::{Distribution, Normal};
 // Helpers
 
 fn dct(n: usize) -> SharedBasis<f64> {
-    BasisPlanner::new().plan(BasisKind::Dct, n).expect("dct plans")
+    BasisPlanner::new()
+        .plan(BasisKind::Dct, n)
+        .expect("dct plans")
 }
 
 fn random_indices(rng: &mut StdRng, n: usize, m: usize) -> Vec<u32> {
@@ -124,7 +126,11 @@ fn dense_power_iteration_finds_published_lipschitz_constant() {
     // CHECK-VALUES 6.8: ||A||_2^2 = 14.742039805947844.
     let mut op = DenseOperator::new(4, 6, TINY_A.to_vec());
     let norm: f64 = estimate_operator_norm(&mut op, 5000, 1e-16);
-    assert!((norm * norm - TINY_L).abs() < 1e-9 * TINY_L, "{}", norm * norm);
+    assert!(
+        (norm * norm - TINY_L).abs() < 1e-9 * TINY_L,
+        "{}",
+        norm * norm
+    );
     assert!(op.lipschitz() >= TINY_L * (1.0 - 1e-12));
 }
 
@@ -132,9 +138,30 @@ fn dense_power_iteration_finds_published_lipschitz_constant() {
 fn first_fista_iterates_match_published_values() {
     // CHECK-VALUES 6.8: x_1..x_3 of FISTA from x_0 = 0 with L = 14.742039805947844, no restart.
     let expected = [
-        [0.406999308032, -0.135666436011, 0.067833218005, 0.0, 0.0, -0.271332872021],
-        [0.588532688281, -0.160900580862, 0.080450290431, 0.0, -0.082824218369, -0.363213270909],
-        [0.712251747786, -0.154114485024, 0.052253142635, 0.0, -0.207130138139, -0.419795361659],
+        [
+            0.406999308032,
+            -0.135666436011,
+            0.067833218005,
+            0.0,
+            0.0,
+            -0.271332872021,
+        ],
+        [
+            0.588532688281,
+            -0.160900580862,
+            0.080450290431,
+            0.0,
+            -0.082824218369,
+            -0.363213270909,
+        ],
+        [
+            0.712251747786,
+            -0.154114485024,
+            0.052253142635,
+            0.0,
+            -0.207130138139,
+            -0.419795361659,
+        ],
     ];
     let mut op = tiny_operator();
     let mut work = FistaWork::new();
@@ -158,7 +185,14 @@ fn first_fista_iterates_match_published_values() {
 fn duality_gap_matches_published_values() {
     // CHECK-VALUES 6.8: gap 6.612244897959 at s = 0 and 3.103531338773 at x_1.
     let mut op = tiny_operator();
-    let x1 = [0.406999308032, -0.135666436011, 0.067833218005, 0.0, 0.0, -0.271332872021];
+    let x1 = [
+        0.406999308032,
+        -0.135666436011,
+        0.067833218005,
+        0.0,
+        0.0,
+        -0.271332872021,
+    ];
     assert!((duality_gap(&mut op, &TINY_Y, 1.0, &[0.0; 6]) - 6.612244897959).abs() < 1e-9);
     assert!((duality_gap(&mut op, &TINY_Y, 1.0, &x1) - 3.103531338773).abs() < 1e-9);
 }
@@ -181,7 +215,9 @@ fn tiny_lasso_reaches_published_solution() {
         assert!((a - b).abs() < 1e-8, "{:?}", sol.coefficients);
     }
     assert!((sol.report.objective - 103.0 / 24.0).abs() < 1e-10);
-    assert!((lasso_objective(&mut op, &TINY_Y, 1.0, &sol.coefficients) - 103.0 / 24.0).abs() < 1e-10);
+    assert!(
+        (lasso_objective(&mut op, &TINY_Y, 1.0, &sol.coefficients) - 103.0 / 24.0).abs() < 1e-10
+    );
     assert_eq!(sol.report.support, 3);
     assert!((sol.report.lambda_max - 7.0).abs() < 1e-12);
     assert!(!sol.report.debiased);
@@ -196,8 +232,8 @@ fn lambda_at_or_above_max_gives_zero() {
         form: lasso(LambdaRule::Absolute(7.0)),
         ..SolveSettings::default()
     };
-    let sol = solve_with_operator(&mut op, &TINY_Y, &settings, None, &mut Workspace::new())
-        .unwrap();
+    let sol =
+        solve_with_operator(&mut op, &TINY_Y, &settings, None, &mut Workspace::new()).unwrap();
     assert!(sol.coefficients.iter().all(|&v| v == 0.0));
     assert_eq!(sol.report.stop, StopReason::ZeroSolution);
 }
@@ -249,12 +285,14 @@ fn kkt_holds_on_random_sampled_dct_problems() {
             debias: false,
             ..SolveSettings::default()
         };
-        let sol = solve_with_operator(&mut op, &y, &settings, None, &mut Workspace::new())
-            .unwrap();
+        let sol = solve_with_operator(&mut op, &y, &settings, None, &mut Workspace::new()).unwrap();
         assert!(sol.report.converged, "trial {trial}: {:?}", sol.report);
         let lambda = sol.report.lambda;
         let v = kkt_violation(&mut op, &y, lambda, &sol.coefficients);
-        assert!(v < 1e-6 * lambda, "trial {trial}: violation {v}, lambda {lambda}");
+        assert!(
+            v < 1e-6 * lambda,
+            "trial {trial}: violation {v}, lambda {lambda}"
+        );
         let gap = duality_gap(&mut op, &y, lambda, &sol.coefficients);
         assert!(gap <= 1e-10 * sol.report.objective, "{gap}");
     }
@@ -356,11 +394,13 @@ fn constrained_form_meets_eps() {
             debias,
             ..SolveSettings::default()
         };
-        let sol = solve_with_operator(&mut op, &y, &settings, None, &mut Workspace::new())
-            .unwrap();
+        let sol = solve_with_operator(&mut op, &y, &settings, None, &mut Workspace::new()).unwrap();
         assert_eq!(sol.report.stop, StopReason::ResidualWithinEps);
         let lasso_res = sol.report.lasso_residual_norm;
-        assert!((lasso_res - eps).abs() <= 0.02 * eps, "{lasso_res} vs {eps}");
+        assert!(
+            (lasso_res - eps).abs() <= 0.02 * eps,
+            "{lasso_res} vs {eps}"
+        );
         if debias {
             // The refit only lowers the residual below the bound.
             assert!(sol.report.residual_norm <= 1.02 * eps);
@@ -429,13 +469,20 @@ fn debiased_tone_amplitudes_are_within_half_a_percent() {
     let sol = solver
         .solve(&idx, &y, &SolveSettings::default(), None)
         .unwrap();
-    assert!(sol.report.debiased && sol.report.converged, "{:?}", sol.report);
+    assert!(
+        sol.report.debiased && sol.report.converged,
+        "{:?}",
+        sol.report
+    );
     let scale = (n as f64 / 2.0).sqrt();
     for &(k, a) in &tones {
         let est = sol.coefficients[k] / scale;
         assert!((est - a).abs() <= 0.005 * a, "bin {k}: {est} vs {a}");
         let shrunk = sol.lasso_coefficients[k] / scale;
-        assert!(shrunk < est, "the LASSO amplitude is shrunk, the refit is not");
+        assert!(
+            shrunk < est,
+            "the LASSO amplitude is shrunk, the refit is not"
+        );
     }
 }
 
@@ -502,9 +549,14 @@ fn warm_start_takes_fewer_iterations() {
     let mut ws = Workspace::new();
     let first = solve_with_operator(&mut op, &y, &settings, None, &mut ws).unwrap();
     let cold = solve_with_operator(&mut op, &y2, &settings, None, &mut ws).unwrap();
-    let warm =
-        solve_with_operator(&mut op, &y2, &settings, Some(&first.lasso_coefficients), &mut ws)
-            .unwrap();
+    let warm = solve_with_operator(
+        &mut op,
+        &y2,
+        &settings,
+        Some(&first.lasso_coefficients),
+        &mut ws,
+    )
+    .unwrap();
     assert!(cold.report.converged && warm.report.converged);
     assert!(
         warm.report.iterations < cold.report.iterations,

@@ -207,7 +207,10 @@ pub fn run(args: DemoArgs) -> anyhow::Result<ExitCode> {
     }
     println!(
         "csgate demo: {} windows of n = {n} at {} Hz, m = {m} (m/n = {:.3}), basis {}, hop {hop}",
-        summary.windows, SAMPLE_RATE_HZ, m as f64 / n as f64, summary.basis
+        summary.windows,
+        SAMPLE_RATE_HZ,
+        m as f64 / n as f64,
+        summary.basis
     );
     println!(
         "{:>6} {:>9} {:>11} {:>6} {:>5} {:>10} {:>8} {:>9} {:>8}",
