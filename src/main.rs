@@ -20,6 +20,8 @@ enum Command {
     Demo(commands::demo::DemoArgs),
     /// Welch spectrum and peaks of a signal file (text, one value per line; or raw .f32/.f64).
     Spectrum(commands::spectrum::SpectrumArgs),
+    /// Reconstruct one window given as JSON and write the coefficients, signal and report.
+    Solve(commands::solve::SolveArgs),
 }
 
 fn main() -> ExitCode {
@@ -28,6 +30,7 @@ fn main() -> ExitCode {
     let result = match cli.command {
         Command::Demo(args) => commands::demo::run(args),
         Command::Spectrum(args) => commands::spectrum::run(args),
+        Command::Solve(args) => commands::solve::run(args),
     };
     match result {
         Ok(code) => code,

@@ -2,3 +2,4 @@
 
 pub mod demo;
 pub mod spectrum;
+pub mod solve;
