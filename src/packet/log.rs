@@ -1,0 +1,1 @@
+//! Packet-log files (in progress).
