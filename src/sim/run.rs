@@ -524,20 +524,39 @@ pub async fn send_to_target(
             let mut batch_no = 0u64;
             let node_key = node.spec.key();
             while node.remaining() > 0 {
-                let mut packets = Vec::new();
-                for _ in 0..SEND_BATCH_WINDOWS {
-                    let Some(w) = node.next_window()? else { break };
-                    {
-                        let mut f = on_window.lock().expect("window callback poisoned");
-                        (*f)(&w)?;
+                // Generation is CPU work: keep it off the runtime's workers so that the other
+                // nodes' paced sends stay on time.
+                let cb = on_window.clone();
+                let (back, batch) = tokio::task::spawn_blocking(move || {
+                    let mut batch = Vec::new();
+                    let mut windows = Vec::new();
+                    for _ in 0..SEND_BATCH_WINDOWS {
+                        match node.next_window() {
+                            Ok(Some(w)) => {
+                                let mut f = cb.lock().expect("window callback poisoned");
+                                if let Err(e) = (*f)(&w) {
+                                    return (node, Err(e));
+                                }
+                                windows.push((w.clipped, w.packets.len()));
+                                batch.extend(w.packets);
+                            }
+                            Ok(None) => break,
+                            Err(e) => return (node, Err(e)),
+                        }
                     }
+                    (node, Ok((batch, windows)))
+                })
+                .await
+                .map_err(|e| SimError::Option(format!("node generator failed: {e}")))?;
+                node = back;
+                let (packets, windows) = batch?;
+                for (clipped, _) in &windows {
                     part.windows += 1;
-                    part.clipped += w.clipped;
-                    for p in &w.packets {
-                        part.frames += 1;
-                        part.bytes += wire::encoded_window_len(p, node_key.is_some()) as u64;
-                    }
-                    packets.extend(w.packets);
+                    part.clipped += clipped;
+                }
+                for p in &packets {
+                    part.frames += 1;
+                    part.bytes += wire::encoded_window_len(p, node_key.is_some()) as u64;
                 }
                 let mut batch_plan = plan.clone();
                 batch_plan.seed = node_seed(plan.seed ^ batch_no, node.spec.id);
