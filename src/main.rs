@@ -18,6 +18,8 @@ struct Cli {
 enum Command {
     /// Reconstruct a set of generated windows with the engine and print what it did.
     Demo(commands::demo::DemoArgs),
+    /// Simulate sensor nodes on machines from a scenario file: packet log or TCP, plus truth.
+    Simulate(commands::simulate::SimulateArgs),
 }
 
 fn main() -> ExitCode {
@@ -25,6 +27,7 @@ fn main() -> ExitCode {
     init_logging();
     let result = match cli.command {
         Command::Demo(args) => commands::demo::run(args),
+        Command::Simulate(args) => commands::simulate::run(args),
     };
     match result {
         Ok(code) => code,

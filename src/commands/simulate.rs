@@ -10,6 +10,7 @@ use indicatif::{ProgressBar, ProgressStyle};
 use std::net::{SocketAddr, ToSocketAddrs};
 use std::path::PathBuf;
 use std::process::ExitCode;
+use std::sync::{Arc, Mutex};
 
 /// Options of `csgate simulate`.
 #[derive(Debug, Args)]
@@ -71,15 +72,16 @@ pub fn run(args: SimulateArgs) -> anyhow::Result<ExitCode> {
         );
     }
     let bar = progress_bar(total, args.quiet);
-    let mut truth = match &args.truth {
-        Some(path) => Some(truth_writer(path, &scenario, &sim)?),
+    let truth = Arc::new(Mutex::new(match &args.truth {
+        Some(path) => Some(truth::open(path, &scenario, &sim)?),
         None => None,
-    };
+    }));
     let mut on_window = {
         let bar = bar.clone();
+        let truth = truth.clone();
         move |w: &SimWindow| -> Result<(), SimError> {
-            if let Some(t) = truth.as_mut() {
-                t.append(w).map_err(|e| SimError::Option(e.to_string()))?;
+            if let Some(t) = truth.lock().expect("truth writer poisoned").as_mut() {
+                truth::append(t, w)?;
             }
             bar.inc(1);
             Ok(())
@@ -112,8 +114,8 @@ pub fn run(args: SimulateArgs) -> anyhow::Result<ExitCode> {
             .with_context(|| format!("simulating to {target}"))?
     };
     bar.finish_and_clear();
-    if let Some(t) = truth_finish(&args) {
-        t?;
+    if let Some(t) = truth.lock().expect("truth writer poisoned").take() {
+        truth::finish(t)?;
     }
     print_summary(&scenario, &summary, args.duration, &args);
     Ok(ExitCode::SUCCESS)
@@ -175,5 +177,48 @@ fn print_summary(scenario: &Scenario, s: &RunSummary, duration: f64, args: &Simu
             f.delivered.len(),
             f.acks_received
         );
+    }
+}
+
+/// Truth output through the store's writer when built with HDF5, an error otherwise.
+#[cfg(feature = "hdf5-store")]
+mod truth {
+    use super::*;
+    pub use csgate::sim::truth::TruthWriter as Writer;
+
+    pub fn open(path: &std::path::Path, scenario: &Scenario, sim: &Simulation) -> anyhow::Result<Writer> {
+        Writer::create(path, scenario, sim)
+            .with_context(|| format!("--truth {}", path.display()))
+    }
+
+    pub fn append(t: &mut Writer, w: &SimWindow) -> Result<(), SimError> {
+        t.append(w).map_err(|e| SimError::Option(format!("writing truth: {e}")))
+    }
+
+    pub fn finish(t: Writer) -> anyhow::Result<()> {
+        t.finish().context("closing the truth file")
+    }
+}
+
+#[cfg(not(feature = "hdf5-store"))]
+mod truth {
+    use super::*;
+
+    /// Never built: `open` refuses.
+    pub enum Writer {}
+
+    pub fn open(path: &std::path::Path, _: &Scenario, _: &Simulation) -> anyhow::Result<Writer> {
+        bail!(
+            "--truth {}: this csgate was built without the hdf5-store feature",
+            path.display()
+        )
+    }
+
+    pub fn append(t: &mut Writer, _: &SimWindow) -> Result<(), SimError> {
+        match *t {}
+    }
+
+    pub fn finish(t: Writer) -> anyhow::Result<()> {
+        match t {}
     }
 }

@@ -7,6 +7,7 @@
 //! - [`scenario`]: the TOML scenario file (site, nodes, channels, machines), checked once.
 //! - [`run`]: windowing, random sampling, quantization, frame building, and the outputs
 //!   (packet log, TCP through the fault-injecting sender).
+//! - [`truth`] (feature `hdf5-store`): the noise-free truth as an HDF5 file in the record layout.
 //!
 //! The truth a run can keep is the noise-free signal of each channel at the full grid rate:
 //! every deterministic and impulsive source through the channel's mix. The machine's broadband
@@ -43,6 +44,8 @@
 pub mod machine;
 pub mod run;
 pub mod scenario;
+#[cfg(feature = "hdf5-store")]
+pub mod truth;
 
 pub use machine::{
     BearingGeometry, ChannelMix, DefectKind, FaultFrequencies, MachineSpec, MachineSynth,
