@@ -510,4 +510,5 @@ fn simulate_command_reports_bad_input() {
         "drop=0.1",
     ]);
     assert!(!out.status.success());
+    assert!(String::from_utf8_lossy(&out.stderr).contains("need --target"));
 }

@@ -43,7 +43,7 @@ pub struct SimulateArgs {
     /// Faults to inject on the TCP link, e.g.
     /// `drop=0.01,dup=0.01,reorder=0.01,corrupt=0.001,disconnect=0.001,reboot=0.0005`
     /// (probabilities per frame; also `distance=N`, `seed=N`).
-    #[arg(long, requires = "target", value_name = "LIST")]
+    #[arg(long, value_name = "LIST")]
     pub faults: Option<String>,
     /// No progress bar.
     #[arg(long)]
@@ -54,6 +54,9 @@ pub struct SimulateArgs {
 pub fn run(args: SimulateArgs) -> anyhow::Result<ExitCode> {
     if !(args.duration.is_finite() && args.duration > 0.0) {
         bail!("--duration {}: must be a positive number of seconds", args.duration);
+    }
+    if args.faults.is_some() && args.target.is_none() {
+        bail!("--faults: faults are injected on the TCP link, so they need --target");
     }
     let mut scenario = Scenario::load(&args.scenario)?;
     if let Some(seed) = args.seed {
