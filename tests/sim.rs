@@ -38,7 +38,11 @@ fn bearing_fault_frequencies_match_worked_example() {
     assert!(close(f.bpfo_hz, 107.364306), "BPFO {}", f.bpfo_hz);
     assert!(close(f.bpfi_hz, 162.185694), "BPFI {}", f.bpfi_hz);
     assert!(close(f.bsf_hz, 70.584594), "BSF {}", f.bsf_hz);
-    assert!(close(2.0 * f.bsf_hz, 141.169188), "2 BSF {}", 2.0 * f.bsf_hz);
+    assert!(
+        close(2.0 * f.bsf_hz, 141.169188),
+        "2 BSF {}",
+        2.0 * f.bsf_hz
+    );
     assert!(close(f.ftf_hz, 11.929367), "FTF {}", f.ftf_hz);
     // Identities of the same formulas: BPFO + BPFI = Nb fr, FTF = BPFO / Nb.
     assert!(close(f.bpfo_hz + f.bpfi_hz, 269.55));
@@ -102,11 +106,17 @@ fn outer_race_impacts_come_at_bpfo_within_jitter() {
     );
     // The spacing really varies (slip), by about the configured jitter: a uniform draw in
     // +/-j has standard deviation j/sqrt(3).
-    let sd = (gaps.iter().map(|g| (g * bpfo - mean * bpfo).powi(2)).sum::<f64>()
+    let sd = (gaps
+        .iter()
+        .map(|g| (g * bpfo - mean * bpfo).powi(2))
+        .sum::<f64>()
         / gaps.len() as f64)
         .sqrt();
     let expected = defect.jitter / 3f64.sqrt();
-    assert!(sd > 0.5 * expected && sd < 2.0 * expected, "sd {sd}, expected about {expected}");
+    assert!(
+        sd > 0.5 * expected && sd < 2.0 * expected,
+        "sd {sd}, expected about {expected}"
+    );
 
     // The healthy pump's bearing never strikes.
     assert!(impact_times(&node_machine(&scenario, 101), 25_600.0, 2.0).is_empty());
@@ -207,7 +217,11 @@ fn simulate_to_log_reads_back_and_is_deterministic() {
         "2",
         "--quiet",
     ]);
-    assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+    assert!(
+        out.status.success(),
+        "{}",
+        String::from_utf8_lossy(&out.stderr)
+    );
     let stdout = String::from_utf8_lossy(&out.stdout);
     assert!(stdout.contains("4 nodes, 6 streams"), "{stdout}");
 
@@ -239,7 +253,10 @@ fn simulate_to_log_reads_back_and_is_deterministic() {
                 assert_eq!(p.is_authenticated(), node.auth_key.is_some());
                 match p.index_coding {
                     IndexCoding::Seeded { seed } => {
-                        assert_eq!(node.index_encoding, csgate::sim::scenario::IndexEncoding::Seed);
+                        assert_eq!(
+                            node.index_encoding,
+                            csgate::sim::scenario::IndexEncoding::Seed
+                        );
                         assert_eq!(p.indices, indices::sample_indices(seed, 4096, 1024));
                     }
                     _ => assert_eq!(
@@ -279,7 +296,11 @@ fn simulate_to_log_reads_back_and_is_deterministic() {
             args.extend(["--seed", s]);
         }
         let out = simulate(&args);
-        assert!(out.status.success(), "{}", String::from_utf8_lossy(&out.stderr));
+        assert!(
+            out.status.success(),
+            "{}",
+            String::from_utf8_lossy(&out.stderr)
+        );
     }
     let bytes = std::fs::read(&log).unwrap();
     assert_eq!(bytes, std::fs::read(&again).unwrap());
@@ -317,7 +338,13 @@ fn check_truth(path: &Path, scenario: &Scenario, packets: &[Packet]) {
     let sigma = (0.05f64.powi(2) + 0.01f64.powi(2)).sqrt();
     let bound = 6.0 * sigma + node.count_scale(&node.channels[0]);
     let mut n = 0;
-    for p in packets.iter().filter(|p| p.stream() == StreamId { node: 101, channel: 0 }) {
+    for p in packets.iter().filter(|p| {
+        p.stream()
+            == StreamId {
+                node: 101,
+                channel: 0,
+            }
+    }) {
         let start = p.header.seq as usize * 2048;
         for (&i, &v) in p.indices.iter().zip(&p.values) {
             let d = (f64::from(v) - f64::from(truth[start + i as usize])).abs();
@@ -327,7 +354,8 @@ fn check_truth(path: &Path, scenario: &Scenario, packets: &[Packet]) {
     }
     assert_eq!(n, 24 * 1024);
     // The truth is not trivially zero.
-    let rms = (truth.iter().map(|&x| f64::from(x).powi(2)).sum::<f64>() / truth.len() as f64).sqrt();
+    let rms =
+        (truth.iter().map(|&x| f64::from(x).powi(2)).sum::<f64>() / truth.len() as f64).sqrt();
     assert!(rms > 0.3, "truth rms {rms}");
 }
 
@@ -378,12 +406,17 @@ async fn simulate_to_tcp_with_faults_reports_what_it_did() {
         (conns, total)
     });
     let mut scenario = demo_scenario();
-    scenario.nodes.iter_mut().for_each(|n| n.channels.truncate(1));
+    scenario
+        .nodes
+        .iter_mut()
+        .for_each(|n| n.channels.truncate(1));
     let sim = Simulation::new(&scenario, 3.0, false);
     let plan = parse_faults("drop=0.1,dup=0.05", 3).unwrap();
-    let summary = send_to_target(sim, &scenario, addr, &plan, Pace::AsFastAsPossible, |_| Ok(()))
-        .await
-        .unwrap();
+    let summary = send_to_target(sim, &scenario, addr, &plan, Pace::AsFastAsPossible, |_| {
+        Ok(())
+    })
+    .await
+    .unwrap();
     let (conns, bytes) = server.await.unwrap();
     let faults = summary.faults.unwrap();
     // 3 s: (76800 - 4096) / 2048 + 1 = 36 windows per node, one stream each.
@@ -428,13 +461,19 @@ fn scenario_errors_name_file_and_key() {
     assert!(Scenario::from_toml_str(GOOD, Path::new("good.toml")).is_ok());
 
     let e = load_err(&GOOD.replace("ratio = 0.25", "ratio = 0.25\nratoi = 0.3"));
-    assert!(e.contains("bad.toml") && e.contains("unknown field `ratoi`"), "{e}");
+    assert!(
+        e.contains("bad.toml") && e.contains("unknown field `ratoi`"),
+        "{e}"
+    );
 
     let e = load_err(&GOOD.replace("ratio = 0.25\n", ""));
     assert!(e.contains("missing field `ratio`"), "{e}");
 
     let e = load_err(&GOOD.replace("window_len = 4096", "window_len = 8"));
-    assert!(e.contains("node[0].window_len") && e.contains("16..=65536"), "{e}");
+    assert!(
+        e.contains("node[0].window_len") && e.contains("16..=65536"),
+        "{e}"
+    );
 
     let e = load_err(&GOOD.replace("ratio = 0.25", "ratio = 1.5"));
     assert!(e.contains("node[0].ratio"), "{e}");
@@ -450,12 +489,18 @@ fn scenario_errors_name_file_and_key() {
          pitch_diameter_mm = 40.0\n[node.machine.bearing.defect]\nkind = \"outer_race\"\n\
          amplitude = 1.0\nresonance_hz = 20000.0\ndecay_ms = 1.0\n"
     ));
-    assert!(e.contains("node[0].machine.bearing.defect.resonance_hz"), "{e}");
+    assert!(
+        e.contains("node[0].machine.bearing.defect.resonance_hz"),
+        "{e}"
+    );
 
     let e = load_err(&GOOD.replace("units = \"m/s^2\"", "units = \"furlong\""));
     assert!(e.contains("node[0].channel[0].units"), "{e}");
 
-    let e = load_err(&GOOD.replace("[site]\nname = \"Bench\"", "[site]\nname = \"Bench\"\nstart_time = \"yesterday\""));
+    let e = load_err(&GOOD.replace(
+        "[site]\nname = \"Bench\"",
+        "[site]\nname = \"Bench\"\nstart_time = \"yesterday\"",
+    ));
     assert!(e.contains("site.start_time"), "{e}");
 
     let e = load_err("[site\nname = 1");
@@ -471,7 +516,11 @@ fn scenario_errors_name_file_and_key() {
 fn simulate_command_reports_bad_input() {
     let dir = test_dir();
     let bad = dir.path().join("bad.toml");
-    std::fs::write(&bad, GOOD.replace("window_len = 4096", "window_len = 4096\nwindow = 2")).unwrap();
+    std::fs::write(
+        &bad,
+        GOOD.replace("window_len = 4096", "window_len = 4096\nwindow = 2"),
+    )
+    .unwrap();
     let log = dir.path().join("x.cslog");
     let out = simulate(&[
         "--scenario",
@@ -481,9 +530,17 @@ fn simulate_command_reports_bad_input() {
     ]);
     assert!(!out.status.success());
     let err = String::from_utf8_lossy(&out.stderr);
-    assert!(err.contains("bad.toml") && err.contains("unknown field `window`"), "{err}");
+    assert!(
+        err.contains("bad.toml") && err.contains("unknown field `window`"),
+        "{err}"
+    );
 
-    let out = simulate(&["--scenario", "/nonexistent.toml", "--out", log.to_str().unwrap()]);
+    let out = simulate(&[
+        "--scenario",
+        "/nonexistent.toml",
+        "--out",
+        log.to_str().unwrap(),
+    ]);
     assert!(!out.status.success());
     assert!(String::from_utf8_lossy(&out.stderr).contains("/nonexistent.toml"));
 

@@ -53,7 +53,10 @@ pub struct SimulateArgs {
 /// Runs the simulation.
 pub fn run(args: SimulateArgs) -> anyhow::Result<ExitCode> {
     if !(args.duration.is_finite() && args.duration > 0.0) {
-        bail!("--duration {}: must be a positive number of seconds", args.duration);
+        bail!(
+            "--duration {}: must be a positive number of seconds",
+            args.duration
+        );
     }
     if args.faults.is_some() && args.target.is_none() {
         bail!("--faults: faults are injected on the TCP link, so they need --target");
@@ -100,7 +103,10 @@ pub fn run(args: SimulateArgs) -> anyhow::Result<ExitCode> {
         drop(on_window);
         s
     } else {
-        let target = args.target.as_deref().expect("clap requires --out or --target");
+        let target = args
+            .target
+            .as_deref()
+            .expect("clap requires --out or --target");
         let addr = resolve(target)?;
         let plan = run::parse_faults(args.faults.as_deref().unwrap_or(""), scenario.site.seed)
             .map_err(anyhow::Error::msg)?;
@@ -113,7 +119,9 @@ pub fn run(args: SimulateArgs) -> anyhow::Result<ExitCode> {
             .build()
             .context("starting the async runtime")?;
         runtime
-            .block_on(run::send_to_target(sim, &scenario, addr, &plan, pace, on_window))
+            .block_on(run::send_to_target(
+                sim, &scenario, addr, &plan, pace, on_window,
+            ))
             .with_context(|| format!("simulating to {target}"))?
     };
     bar.finish_and_clear();
@@ -189,13 +197,17 @@ mod truth {
     use super::*;
     pub use csgate::sim::truth::TruthWriter as Writer;
 
-    pub fn open(path: &std::path::Path, scenario: &Scenario, sim: &Simulation) -> anyhow::Result<Writer> {
-        Writer::create(path, scenario, sim)
-            .with_context(|| format!("--truth {}", path.display()))
+    pub fn open(
+        path: &std::path::Path,
+        scenario: &Scenario,
+        sim: &Simulation,
+    ) -> anyhow::Result<Writer> {
+        Writer::create(path, scenario, sim).with_context(|| format!("--truth {}", path.display()))
     }
 
     pub fn append(t: &mut Writer, w: &SimWindow) -> Result<(), SimError> {
-        t.append(w).map_err(|e| SimError::Option(format!("writing truth: {e}")))
+        t.append(w)
+            .map_err(|e| SimError::Option(format!("writing truth: {e}")))
     }
 
     pub fn finish(t: Writer) -> anyhow::Result<()> {

@@ -90,7 +90,8 @@ impl BearingGeometry {
         if !(self.element_diameter_mm.is_finite() && self.element_diameter_mm > 0.0) {
             return Err("element_diameter_mm: must be positive".into());
         }
-        if !(self.pitch_diameter_mm.is_finite() && self.pitch_diameter_mm > self.element_diameter_mm)
+        if !(self.pitch_diameter_mm.is_finite()
+            && self.pitch_diameter_mm > self.element_diameter_mm)
         {
             return Err("pitch_diameter_mm: must exceed element_diameter_mm".into());
         }
@@ -358,7 +359,9 @@ impl MachineSpec {
     /// key, relative to the machine table.
     pub fn check(&self, sample_rate_hz: f64) -> Result<(), String> {
         let shaft_hz = match (self.shaft_hz, self.shaft_rpm) {
-            (Some(_), Some(_)) => return Err("shaft_hz: give shaft_hz or shaft_rpm, not both".into()),
+            (Some(_), Some(_)) => {
+                return Err("shaft_hz: give shaft_hz or shaft_rpm, not both".into())
+            }
             (None, None) => return Err("shaft_hz: missing (give shaft_hz or shaft_rpm)".into()),
             (Some(hz), None) => hz,
             (None, Some(rpm)) => rpm / 60.0,
@@ -400,7 +403,9 @@ impl MachineSpec {
             below_nyquist("gear.harmonics".into(), top * f64::from(g.teeth))?;
             for (i, s) in g.sidebands.iter().enumerate() {
                 if s.order == 0 || s.order >= g.teeth {
-                    return Err(format!("gear.sidebands[{i}].order: must be within 1..teeth"));
+                    return Err(format!(
+                        "gear.sidebands[{i}].order: must be within 1..teeth"
+                    ));
                 }
                 check_amplitude(&format!("gear.sidebands[{i}].amplitude"), s.amplitude)?;
                 below_nyquist(
@@ -667,7 +672,11 @@ impl MachineSynth {
         impact_rng.set_stream(2);
         let mut noise_rng = ChaCha8Rng::seed_from_u64(seed);
         noise_rng.set_stream(3);
-        let wander = SpeedWander::new(spec.speed_wander, spec.speed_wander_period_s, &mut wander_rng);
+        let wander = SpeedWander::new(
+            spec.speed_wander,
+            spec.speed_wander_period_s,
+            &mut wander_rng,
+        );
         let geometry = spec.bearing.map(|b| b.geometry());
         let defect = spec.bearing.and_then(|b| {
             b.defect
@@ -676,7 +685,8 @@ impl MachineSynth {
         // The first impact falls at a random point of its first period, so that machines with
         // the same defect do not all strike at instant 0.
         let nominal_hz = spec.nominal_shaft_hz();
-        let next_impact_s = defect.map(|d| impact_rng.random_range(0.0..1.0) / (d.order * nominal_hz));
+        let next_impact_s =
+            defect.map(|d| impact_rng.random_range(0.0..1.0) / (d.order * nominal_hz));
         MachineSynth {
             spec: spec.clone(),
             sample_rate_hz,
@@ -894,7 +904,10 @@ mod tests {
         let x: Vec<f64> = (0..25_600).map(|_| m.next_sample().bearing).collect();
         let peak = x.iter().fold(0.0f64, |a, &b| a.max(b.abs()));
         assert!(peak > 0.5 && peak <= 1.0, "peak {peak}");
-        assert!(m.ringing.len() <= 2, "only the last impact or two still ring");
+        assert!(
+            m.ringing.len() <= 2,
+            "only the last impact or two still ring"
+        );
     }
 
     #[test]

@@ -637,11 +637,14 @@ pub fn parse_faults(spec: &str, run_seed: u64) -> Result<FaultPlan, String> {
             "disconnect" => plan.disconnect_p = prob()?,
             "reboot" => plan.reboot_p = prob()?,
             "distance" => {
-                plan.reorder_distance = value
-                    .parse()
-                    .ok()
-                    .filter(|&d: &usize| d >= 1)
-                    .ok_or_else(|| format!("fault distance: {value:?} is not a whole number >= 1"))?
+                plan.reorder_distance =
+                    value
+                        .parse()
+                        .ok()
+                        .filter(|&d: &usize| d >= 1)
+                        .ok_or_else(|| {
+                            format!("fault distance: {value:?} is not a whole number >= 1")
+                        })?
             }
             "seed" => {
                 plan.seed = value
@@ -679,17 +682,30 @@ mod tests {
 
     #[test]
     fn fault_lists_parse() {
-        let p = parse_faults("drop=0.01, dup=0.02,reorder=0.03,corrupt=0.001,distance=4", 5)
-            .unwrap();
+        let p = parse_faults(
+            "drop=0.01, dup=0.02,reorder=0.03,corrupt=0.001,distance=4",
+            5,
+        )
+        .unwrap();
         assert_eq!(p.drop_p, 0.01);
         assert_eq!(p.duplicate_p, 0.02);
         assert_eq!(p.reorder_p, 0.03);
         assert_eq!(p.corrupt_p, 0.001);
         assert_eq!(p.reorder_distance, 4);
         assert_eq!(p.seed, 5);
-        assert_eq!(parse_faults("none", 1).unwrap(), FaultPlan { seed: 1, ..FaultPlan::default() });
-        assert!(parse_faults("drop=2", 1).unwrap_err().contains("probability"));
-        assert!(parse_faults("melt=0.1", 1).unwrap_err().contains("unknown fault"));
+        assert_eq!(
+            parse_faults("none", 1).unwrap(),
+            FaultPlan {
+                seed: 1,
+                ..FaultPlan::default()
+            }
+        );
+        assert!(parse_faults("drop=2", 1)
+            .unwrap_err()
+            .contains("probability"));
+        assert!(parse_faults("melt=0.1", 1)
+            .unwrap_err()
+            .contains("unknown fault"));
         assert!(parse_faults("drop", 1).unwrap_err().contains("name=value"));
     }
 

@@ -224,11 +224,13 @@ impl Scenario {
             path: path.to_owned(),
             message: e.to_string().trim_end().to_owned(),
         })?;
-        scenario.check().map_err(|(key, message)| ScenarioError::Invalid {
-            path: path.to_owned(),
-            key,
-            message,
-        })?;
+        scenario
+            .check()
+            .map_err(|(key, message)| ScenarioError::Invalid {
+                path: path.to_owned(),
+                key,
+                message,
+            })?;
         Ok(scenario)
     }
 
@@ -326,7 +328,10 @@ impl NodeSpec {
     fn check(&self) -> Result<(), (String, String)> {
         let bad = |key: &str, msg: String| Err((key.to_owned(), msg));
         if !(self.sample_rate_hz.is_finite() && self.sample_rate_hz > 0.0) {
-            return bad("sample_rate_hz", format!("{} must be positive", self.sample_rate_hz));
+            return bad(
+                "sample_rate_hz",
+                format!("{} must be positive", self.sample_rate_hz),
+            );
         }
         let limits = Limits::default();
         if !(limits.min_window_len..=limits.max_window_len).contains(&self.window_len) {
@@ -351,7 +356,10 @@ impl NodeSpec {
         if self.sample_count() == 0 {
             return bad(
                 "ratio",
-                format!("{} leaves no sample in a window of {}", self.ratio, self.window_len),
+                format!(
+                    "{} leaves no sample in a window of {}",
+                    self.ratio, self.window_len
+                ),
             );
         }
         let max_bits = match self.value_encoding {
@@ -418,7 +426,10 @@ impl NodeSpec {
                     ))
                 }
                 (None, Some(s)) if !(s.is_finite() && s > 0.0) => {
-                    return Err((key("sensitivity_v_per_unit"), format!("{s} must be positive")))
+                    return Err((
+                        key("sensitivity_v_per_unit"),
+                        format!("{s} must be positive"),
+                    ))
                 }
                 (Some(f), None) if !(f.is_finite() && f > 0.0) => {
                     return Err((key("full_scale"), format!("{f} must be positive")))
@@ -426,7 +437,10 @@ impl NodeSpec {
                 _ => {}
             }
             if !(ch.noise_rms.is_finite() && ch.noise_rms >= 0.0) {
-                return Err((key("noise_rms"), format!("{} must be non-negative", ch.noise_rms)));
+                return Err((
+                    key("noise_rms"),
+                    format!("{} must be non-negative", ch.noise_rms),
+                ));
             }
             ch.mix
                 .check()
@@ -490,7 +504,10 @@ shaft_rpm = 1500.0
     fn sensitivity_gives_full_scale() {
         let text = MINIMAL
             .replace("full_scale = 50.0", "sensitivity_v_per_unit = 0.01")
-            .replace("value_encoding = \"i16\"", "value_encoding = \"i16\"\nadc_full_scale_v = 2.5");
+            .replace(
+                "value_encoding = \"i16\"",
+                "value_encoding = \"i16\"\nadc_full_scale_v = 2.5",
+            );
         let s = load(&text).unwrap();
         assert!((s.nodes[0].full_scale(&s.nodes[0].channels[0]) - 250.0).abs() < 1e-9);
     }

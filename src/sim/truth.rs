@@ -7,7 +7,9 @@
 
 use super::run::SimWindow;
 use super::{Scenario, Simulation};
-use crate::store::{layout::close_reason, RecordWriter, StoreError, StreamKey, StreamMeta, WriterOptions};
+use crate::store::{
+    layout::close_reason, RecordWriter, StoreError, StreamKey, StreamMeta, WriterOptions,
+};
 use std::path::Path;
 
 /// Basis attribute of truth streams.
