@@ -22,6 +22,8 @@ enum Command {
     Spectrum(commands::spectrum::SpectrumArgs),
     /// Reconstruct one window given as JSON and write the coefficients, signal and report.
     Solve(commands::solve::SolveArgs),
+    /// Simulate sensor nodes on machines from a scenario file: packet log or TCP, plus truth.
+    Simulate(commands::simulate::SimulateArgs),
 }
 
 fn main() -> ExitCode {
@@ -31,6 +33,7 @@ fn main() -> ExitCode {
         Command::Demo(args) => commands::demo::run(args),
         Command::Spectrum(args) => commands::spectrum::run(args),
         Command::Solve(args) => commands::solve::run(args),
+        Command::Simulate(args) => commands::simulate::run(args),
     };
     match result {
         Ok(code) => code,

@@ -3,3 +3,4 @@
 pub mod demo;
 pub mod spectrum;
 pub mod solve;
+pub mod simulate;
