@@ -1,1 +1,3 @@
-//! (filled in by its issue)
+//! Wiring of the stages: sources -> reorder -> reconstruct (worker pool) -> stitch -> sinks.
+
+pub mod pool;
