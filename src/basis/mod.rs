@@ -25,7 +25,11 @@ pub mod naive;
 pub mod planner;
 pub mod wavelet;
 
-pub use planner::BasisPlanner;
+pub use dct::Dct;
+pub use dft::RealFourier;
+pub use naive::DenseBasis;
+pub use planner::{plan_basis, BasisPlanner};
+pub use wavelet::Daubechies;
 
 /// Which basis, and its parameters. Parsed from and printed as e.g. `dct`, `fourier`, `db8`,
 /// `db4:5` (Daubechies 4 with 5 levels).
