@@ -1,0 +1,559 @@
+//! [`RecordSink`]: the dedicated writer thread. It owns every open record file, takes
+//! [`RecordMsg`]s from a bounded channel, flushes on an interval and on shutdown, and rotates
+//! to the next file of the series when a stream appears after the file is in SWMR mode (HDF5
+//! cannot add objects then) or when the file's age or size limit is reached.
+//!
+//! Files are named `<prefix>-<UTC creation time>-<seq>.h5` (e.g.
+//! `rec-20261201T120000Z-0001.h5`) in the record folder; `index.json` beside them lists each
+//! file, its streams and their sample ranges, and is replaced atomically (write, then rename)
+//! at every file open, flush and close.
+
+use super::layout::{close_reason, IndicatorRow, PeakRow, WindowRow};
+use super::time::{file_stamp, grid_time, iso8601_utc, now_unix_ns, INDEX_FILE};
+use super::writer::{RecordWriter, StreamCursor, StreamKey, StreamMeta, WriterOptions};
+use super::{GapReason, StoreError};
+use serde::{Deserialize, Serialize};
+use std::collections::BTreeMap;
+use std::path::{Path, PathBuf};
+use std::sync::mpsc::{self, RecvTimeoutError, SyncSender};
+use std::thread::JoinHandle;
+use std::time::{Duration, Instant};
+
+/// Configuration of the writer thread.
+#[derive(Debug, Clone)]
+pub struct SinkConfig {
+    /// Record folder (created if missing).
+    pub folder: PathBuf,
+    /// File name prefix. Default "rec".
+    pub prefix: String,
+    /// Storage options of each file.
+    pub writer: WriterOptions,
+    /// Hex digest of the configuration, written into every file.
+    pub config_digest: String,
+    /// Capacity of the message channel. Default 1024: a few seconds of blocks and rows at
+    /// typical rates, so a slow disk pushes back on the pipeline instead of growing memory.
+    pub channel_capacity: usize,
+    /// Flush interval. Default 1 s: a reader (or a crash) loses at most about this much.
+    pub flush_interval: Duration,
+    /// Start a new file once the current one is this old. Default 1 hour.
+    pub rotate_after: Option<Duration>,
+    /// Start a new file once the current one reaches this many bytes. Default 2 GiB.
+    pub rotate_bytes: Option<u64>,
+}
+
+impl SinkConfig {
+    /// Defaults for a record folder.
+    pub fn new(folder: impl Into<PathBuf>) -> Self {
+        Self {
+            folder: folder.into(),
+            prefix: "rec".into(),
+            writer: WriterOptions::default(),
+            config_digest: String::new(),
+            channel_capacity: 1024,
+            flush_interval: Duration::from_secs(1),
+            rotate_after: Some(Duration::from_secs(3600)),
+            rotate_bytes: Some(2 << 30),
+        }
+    }
+}
+
+/// A message to the writer thread. Positions are on the stream's segment grid (see
+/// [`RecordWriter`]).
+#[derive(Debug, Clone)]
+pub enum RecordMsg {
+    /// Declares a stream. Must precede its data; a stream declared after the current file
+    /// went into SWMR mode makes the sink rotate to a new file holding every known stream.
+    OpenStream(StreamMeta),
+    /// Finished samples from grid position `start`.
+    Samples {
+        /// The stream.
+        stream: StreamKey,
+        /// Grid position of `samples[0]`.
+        start: u64,
+        /// The samples.
+        samples: Vec<f32>,
+    },
+    /// A reconstructed window's report.
+    Window {
+        /// The stream.
+        stream: StreamKey,
+        /// The row (`start_sample` is a grid position).
+        row: WindowRow,
+    },
+    /// Samples no window covers.
+    Gap {
+        /// The stream.
+        stream: StreamKey,
+        /// Grid position of the first missing sample.
+        start: u64,
+        /// Number of missing samples.
+        len: u64,
+        /// Why.
+        reason: GapReason,
+    },
+    /// A capture restart: the stream's grid starts again at position 0.
+    Segment {
+        /// The stream.
+        stream: StreamKey,
+        /// The new capture.
+        capture_id: u32,
+        /// Time of grid position 0 of the new capture.
+        t0_unix_ns: i64,
+    },
+    /// A spectral peak.
+    Peak {
+        /// The stream.
+        stream: StreamKey,
+        /// The row.
+        row: PeakRow,
+    },
+    /// Condition indicators of a block.
+    Indicator {
+        /// The stream.
+        stream: StreamKey,
+        /// The row (`start_sample` is a grid position).
+        row: IndicatorRow,
+    },
+    /// Flush now.
+    Flush,
+    /// Flush, close every file and end the thread.
+    Shutdown,
+}
+
+/// What the writer thread did.
+#[derive(Debug, Clone, Default, PartialEq, Eq)]
+pub struct SinkStats {
+    /// Samples written, including NaN fill.
+    pub samples_written: u64,
+    /// Bytes in the files written (their sizes at close).
+    pub bytes_written: u64,
+    /// Files created.
+    pub files: u64,
+    /// Messages dropped because they named a stream that was never opened.
+    pub unknown_stream_msgs: u64,
+    /// Write errors (the first one ends the thread).
+    pub errors: u64,
+}
+
+/// One stream in one file of the index.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct StreamEntry {
+    /// Node id.
+    pub node: u32,
+    /// Channel number.
+    pub channel: u16,
+    /// Group path in the file.
+    pub path: String,
+    /// Samples in the file.
+    pub samples: u64,
+    /// Time of the file's first sample of this stream, Unix nanoseconds.
+    pub start_time_unix_ns: i64,
+    /// Time of the grid instant after the last sample, Unix nanoseconds (equals the next
+    /// file's `start_time_unix_ns` when the capture continues there).
+    pub end_time_unix_ns: i64,
+}
+
+/// One file of the index.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct FileEntry {
+    /// File name within the record folder.
+    pub file: String,
+    /// Sequence number in the series.
+    pub seq: u32,
+    /// Creation time, ISO-8601 UTC.
+    pub created: String,
+    /// Close time, ISO-8601 UTC; `None` while open or if the writer died.
+    pub closed: Option<String>,
+    /// "shutdown" or "rotated" once closed.
+    pub close_reason: Option<String>,
+    /// The file's streams.
+    pub streams: Vec<StreamEntry>,
+}
+
+/// The record folder's `index.json`.
+#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+pub struct RecordIndex {
+    /// Layout version of the files.
+    pub layout_version: u32,
+    /// Files in series order.
+    pub files: Vec<FileEntry>,
+}
+
+impl RecordIndex {
+    /// Reads `index.json` from a record folder.
+    pub fn load(folder: &Path) -> Result<Self, StoreError> {
+        let path = folder.join(INDEX_FILE);
+        let text = std::fs::read_to_string(&path).map_err(|source| StoreError::Io {
+            path: path.clone(),
+            source,
+        })?;
+        serde_json::from_str(&text).map_err(|e| StoreError::Index {
+            path,
+            what: e.to_string(),
+        })
+    }
+
+    fn save(&self, folder: &Path) -> Result<(), StoreError> {
+        let path = folder.join(INDEX_FILE);
+        let tmp = folder.join(format!("{INDEX_FILE}.tmp"));
+        let text = serde_json::to_string_pretty(self).map_err(|e| StoreError::Index {
+            path: path.clone(),
+            what: e.to_string(),
+        })?;
+        let io = |source| StoreError::Io {
+            path: tmp.clone(),
+            source,
+        };
+        std::fs::write(&tmp, text).map_err(io)?;
+        std::fs::rename(&tmp, &path).map_err(|source| StoreError::Io {
+            path: path.clone(),
+            source,
+        })
+    }
+}
+
+/// Handle of the writer thread: a bounded sender. Dropping every sender also shuts the
+/// thread down cleanly (flush and close).
+#[derive(Debug, Clone)]
+pub struct RecordSink {
+    tx: SyncSender<RecordMsg>,
+}
+
+impl RecordSink {
+    /// Starts the writer thread. Setup errors (folder, index) come back through the handle.
+    pub fn spawn(config: SinkConfig) -> (Self, JoinHandle<Result<SinkStats, StoreError>>) {
+        let (tx, rx) = mpsc::sync_channel(config.channel_capacity.max(1));
+        let handle = std::thread::Builder::new()
+            .name("csgate-hdf5".into())
+            .spawn(move || {
+                let mut sink = SinkState::new(config)?;
+                let result = sink.run(&rx);
+                drop(rx);
+                sink.finish(result)
+            })
+            .expect("spawn the record writer thread");
+        (Self { tx }, handle)
+    }
+
+    /// The sender, for stages that want their own clone.
+    pub fn sender(&self) -> SyncSender<RecordMsg> {
+        self.tx.clone()
+    }
+
+    /// Sends a message, blocking while the channel is full.
+    pub fn send(&self, msg: RecordMsg) -> Result<(), StoreError> {
+        self.tx.send(msg).map_err(|_| StoreError::SinkStopped)
+    }
+}
+
+struct OpenFile {
+    writer: RecordWriter,
+    opened: Instant,
+    entry: usize,
+}
+
+struct SinkState {
+    config: SinkConfig,
+    streams: BTreeMap<StreamKey, StreamMeta>,
+    cursors: BTreeMap<StreamKey, StreamCursor>,
+    current: Option<OpenFile>,
+    index: RecordIndex,
+    next_seq: u32,
+    stats: SinkStats,
+}
+
+impl SinkState {
+    fn new(config: SinkConfig) -> Result<Self, StoreError> {
+        std::fs::create_dir_all(&config.folder).map_err(|source| StoreError::Io {
+            path: config.folder.clone(),
+            source,
+        })?;
+        let index = if config.folder.join(INDEX_FILE).exists() {
+            RecordIndex::load(&config.folder)?
+        } else {
+            RecordIndex {
+                layout_version: super::layout::LAYOUT_VERSION,
+                files: Vec::new(),
+            }
+        };
+        // A restart continues the series; files already in the folder are never reused.
+        let mut next_seq = index.files.iter().map(|f| f.seq).max().unwrap_or(0) + 1;
+        if let Ok(dir) = std::fs::read_dir(&config.folder) {
+            for entry in dir.flatten() {
+                if let Some(seq) = seq_of_name(&entry.file_name().to_string_lossy(), &config.prefix)
+                {
+                    next_seq = next_seq.max(seq + 1);
+                }
+            }
+        }
+        Ok(Self {
+            config,
+            streams: BTreeMap::new(),
+            cursors: BTreeMap::new(),
+            current: None,
+            index,
+            next_seq,
+            stats: SinkStats::default(),
+        })
+    }
+
+    fn run(&mut self, rx: &mpsc::Receiver<RecordMsg>) -> Result<(), StoreError> {
+        let mut last_flush = Instant::now();
+        loop {
+            let wait = self
+                .config
+                .flush_interval
+                .saturating_sub(last_flush.elapsed());
+            match rx.recv_timeout(wait) {
+                Ok(RecordMsg::Shutdown) | Err(RecvTimeoutError::Disconnected) => return Ok(()),
+                Ok(RecordMsg::Flush) => {
+                    self.flush()?;
+                    last_flush = Instant::now();
+                }
+                Ok(msg) => self.handle(msg)?,
+                Err(RecvTimeoutError::Timeout) => {}
+            }
+            if last_flush.elapsed() >= self.config.flush_interval {
+                self.flush()?;
+                last_flush = Instant::now();
+            }
+        }
+    }
+
+    fn finish(mut self, result: Result<(), StoreError>) -> Result<SinkStats, StoreError> {
+        match result {
+            Ok(()) => {
+                self.close_current(close_reason::SHUTDOWN)?;
+                Ok(self.stats)
+            }
+            Err(err) => {
+                self.stats.errors += 1;
+                tracing::error!(error = %err, "record writer stopped");
+                // Keep whatever can still be saved; the first error is the one reported.
+                let _ = self.close_current(close_reason::SHUTDOWN);
+                Err(err)
+            }
+        }
+    }
+
+    fn handle(&mut self, msg: RecordMsg) -> Result<(), StoreError> {
+        if let RecordMsg::OpenStream(meta) = msg {
+            let key = meta.key();
+            if self.streams.get(&key) == Some(&meta) {
+                return Ok(());
+            }
+            let in_file = self
+                .current
+                .as_ref()
+                .is_some_and(|f| f.writer.has_stream(key));
+            self.streams.insert(key, meta);
+            if self.current.is_some() {
+                if in_file {
+                    // New metadata for a stream in the file: it cannot be rewritten in SWMR.
+                    tracing::info!(
+                        node = key.node,
+                        channel = key.channel,
+                        "stream metadata changed; rotating"
+                    );
+                }
+                self.close_current(close_reason::ROTATED)?;
+            }
+            return Ok(());
+        }
+        let Some(key) = msg_stream(&msg) else {
+            return Ok(());
+        };
+        if !self.streams.contains_key(&key) {
+            self.stats.unknown_stream_msgs += 1;
+            tracing::warn!(
+                node = key.node,
+                channel = key.channel,
+                "record message for a stream never opened; dropped"
+            );
+            return Ok(());
+        }
+        if matches!(msg, RecordMsg::Samples { .. }) && self.rotation_due() {
+            self.close_current(close_reason::ROTATED)?;
+        }
+        let file = self.ensure_open()?;
+        let writer = &mut file.writer;
+        match msg {
+            RecordMsg::Samples { start, samples, .. } => {
+                let before = writer.samples_written();
+                writer.append_samples(key, start, &samples)?;
+                self.stats.samples_written += writer.samples_written() - before;
+            }
+            RecordMsg::Gap {
+                start, len, reason, ..
+            } => {
+                let before = writer.samples_written();
+                writer.append_gap(key, start, len, reason)?;
+                self.stats.samples_written += writer.samples_written() - before;
+            }
+            RecordMsg::Window { row, .. } => writer.append_window(key, row)?,
+            RecordMsg::Segment {
+                capture_id,
+                t0_unix_ns,
+                ..
+            } => writer.begin_segment(key, capture_id, t0_unix_ns)?,
+            RecordMsg::Peak { row, .. } => writer.append_peak(key, row)?,
+            RecordMsg::Indicator { row, .. } => writer.append_indicator(key, row)?,
+            RecordMsg::OpenStream(_) | RecordMsg::Flush | RecordMsg::Shutdown => {}
+        }
+        Ok(())
+    }
+
+    fn rotation_due(&self) -> bool {
+        let Some(file) = &self.current else {
+            return false;
+        };
+        self.config
+            .rotate_after
+            .is_some_and(|age| file.opened.elapsed() >= age)
+            || self
+                .config
+                .rotate_bytes
+                .is_some_and(|bytes| file.writer.file_size() >= bytes)
+    }
+
+    fn ensure_open(&mut self) -> Result<&mut OpenFile, StoreError> {
+        if self.current.is_none() {
+            let now = now_unix_ns();
+            let seq = self.next_seq;
+            let name = format!("{}-{}-{seq:04}.h5", self.config.prefix, file_stamp(now));
+            let path = self.config.folder.join(&name);
+            let metas: Vec<StreamMeta> = self.streams.values().cloned().collect();
+            let writer = RecordWriter::create_continuing(
+                &path,
+                &metas,
+                &self.cursors,
+                &self.config.writer,
+                &self.config.config_digest,
+            )?;
+            self.next_seq += 1;
+            self.stats.files += 1;
+            self.index.files.push(FileEntry {
+                file: name,
+                seq,
+                created: iso8601_utc(now),
+                closed: None,
+                close_reason: None,
+                streams: Vec::new(),
+            });
+            let entry = self.index.files.len() - 1;
+            self.current = Some(OpenFile {
+                writer,
+                opened: Instant::now(),
+                entry,
+            });
+            self.update_index()?;
+        }
+        Ok(self.current.as_mut().expect("opened above"))
+    }
+
+    fn update_index(&mut self) -> Result<(), StoreError> {
+        if let Some(file) = &self.current {
+            let writer = &file.writer;
+            let streams = writer
+                .streams()
+                .into_iter()
+                .map(|key| {
+                    let meta = writer.meta(key).expect("stream of this writer");
+                    let samples = writer.sample_count(key).unwrap_or(0);
+                    let start = writer.time_of_index(key, 0).unwrap_or(0);
+                    // On the capture grid, like every time in the record, so that the next
+                    // file's start equals this end to the nanosecond.
+                    let end = match writer.cursor(key) {
+                        Some(c) if samples > 0 => {
+                            grid_time(c.capture_t0_unix_ns, c.next_position, meta.sample_rate_hz)
+                        }
+                        _ => start,
+                    };
+                    StreamEntry {
+                        node: key.node,
+                        channel: key.channel,
+                        path: key.group_path(),
+                        samples,
+                        start_time_unix_ns: start,
+                        end_time_unix_ns: end,
+                    }
+                })
+                .collect();
+            self.index.files[file.entry].streams = streams;
+        }
+        self.index.save(&self.config.folder)
+    }
+
+    fn flush(&mut self) -> Result<(), StoreError> {
+        if let Some(file) = &mut self.current {
+            file.writer.flush()?;
+            self.update_index()?;
+        }
+        Ok(())
+    }
+
+    fn close_current(&mut self, reason: u8) -> Result<(), StoreError> {
+        if self.current.is_none() {
+            return Ok(());
+        }
+        self.update_index()?;
+        let file = self.current.take().expect("checked above");
+        for key in file.writer.streams() {
+            // A stream re-declared with new metadata has no entry in `streams` equal to the
+            // file's; it starts afresh at grid position 0 in the next file.
+            if file.writer.meta(key) != self.streams.get(&key) {
+                self.cursors.remove(&key);
+                continue;
+            }
+            if let Some(cursor) = file.writer.cursor(key) {
+                self.cursors.insert(key, cursor);
+            }
+        }
+        self.stats.bytes_written += file.writer.file_size();
+        let entry = file.entry;
+        file.writer.close(reason)?;
+        let e = &mut self.index.files[entry];
+        e.closed = Some(iso8601_utc(now_unix_ns()));
+        e.close_reason = Some(
+            if reason == close_reason::ROTATED {
+                "rotated"
+            } else {
+                "shutdown"
+            }
+            .into(),
+        );
+        self.index.save(&self.config.folder)
+    }
+}
+
+fn msg_stream(msg: &RecordMsg) -> Option<StreamKey> {
+    match msg {
+        RecordMsg::Samples { stream, .. }
+        | RecordMsg::Window { stream, .. }
+        | RecordMsg::Gap { stream, .. }
+        | RecordMsg::Segment { stream, .. }
+        | RecordMsg::Peak { stream, .. }
+        | RecordMsg::Indicator { stream, .. } => Some(*stream),
+        RecordMsg::OpenStream(_) | RecordMsg::Flush | RecordMsg::Shutdown => None,
+    }
+}
+
+/// The sequence number of a file name `<prefix>-<stamp>-<seq>.h5`, if it is one.
+fn seq_of_name(name: &str, prefix: &str) -> Option<u32> {
+    let rest = name.strip_prefix(prefix)?.strip_prefix('-')?;
+    let stem = rest.strip_suffix(".h5")?;
+    let (_, seq) = stem.rsplit_once('-')?;
+    seq.parse().ok()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::seq_of_name;
+
+    #[test]
+    fn file_names_parse_back_to_their_sequence_number() {
+        assert_eq!(seq_of_name("rec-20261201T120000Z-0007.h5", "rec"), Some(7));
+        assert_eq!(seq_of_name("rec-20261201T120000Z-0007.h5", "other"), None);
+        assert_eq!(seq_of_name("index.json", "rec"), None);
+    }
+}
