@@ -18,6 +18,8 @@ struct Cli {
 enum Command {
     /// Reconstruct a set of generated windows with the engine and print what it did.
     Demo(commands::demo::DemoArgs),
+    /// Reconstruct packet logs into one continuous HDF5 record.
+    Replay(commands::replay::ReplayArgs),
 }
 
 fn main() -> ExitCode {
@@ -25,6 +27,7 @@ fn main() -> ExitCode {
     init_logging();
     let result = match cli.command {
         Command::Demo(args) => commands::demo::run(args),
+        Command::Replay(args) => commands::replay::run(args),
     };
     match result {
         Ok(code) => code,

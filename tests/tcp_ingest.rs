@@ -2,7 +2,9 @@
 //! sender, feeding the reorder stage; connection cap, authentication, idle timeout.
 
 use csgate::packet::indices::sample_indices;
-use csgate::packet::{KeyRing, NodeKey, Packet, RawValues, Sampling, StreamId, Units, WindowHeader};
+use csgate::packet::{
+    KeyRing, NodeKey, Packet, RawValues, Sampling, StreamId, Units, WindowHeader,
+};
 use csgate::sources::tcp::{self, IngestStats};
 use csgate::sources::{inject, FaultPlan, IngestConfig, Pace, WindowKey};
 use csgate::stream::reorder::{ReorderConfig, ReorderEvent, Reorderer};
@@ -31,7 +33,10 @@ fn packets(node: u32, channel: u16, count: u64, seeded: bool) -> Vec<Packet> {
             };
             let m = 64;
             let sampling = if seeded {
-                Sampling::Seeded { seed: seq * 31 + u64::from(node), m }
+                Sampling::Seeded {
+                    seed: seq * 31 + u64::from(node),
+                    m,
+                }
             } else {
                 Sampling::Explicit(sample_indices(seq + 7, 256, m))
             };
@@ -83,16 +88,19 @@ impl Gateway {
 async fn faulty_links_deliver_every_intact_window_once_in_order() {
     let key = NodeKey::new(vec![0x11; 16]);
     let mut config = IngestConfig::loopback_ephemeral();
-    config
-        .enrolled
-        .insert("2".into(), "11".repeat(16));
+    config.enrolled.insert("2".into(), "11".repeat(16));
     let gw = start(config, 8).await;
     let mut keys = KeyRing::new(false);
     keys.insert(2, key);
     let keys = Arc::new(keys);
 
     let (done_tx, mut done_rx) = mpsc::channel(8);
-    let streams = [(1u32, 0u16, false), (2, 0, true), (3, 1, false), (3, 2, true)];
+    let streams = [
+        (1u32, 0u16, false),
+        (2, 0, true),
+        (3, 1, false),
+        (3, 2, true),
+    ];
     for (k, &(node, channel, seeded)) in streams.iter().enumerate() {
         let plan = FaultPlan {
             seed: 1000 + k as u64,
@@ -106,16 +114,24 @@ async fn faulty_links_deliver_every_intact_window_once_in_order() {
         };
         let (addr, keys, done_tx) = (gw.addr, keys.clone(), done_tx.clone());
         tokio::spawn(async move {
-            let r = inject::send_packets(addr, packets(node, channel, 150, seeded), &keys, &plan, Pace::AsFastAsPossible)
-                .await
-                .unwrap();
+            let r = inject::send_packets(
+                addr,
+                packets(node, channel, 150, seeded),
+                &keys,
+                &plan,
+                Pace::AsFastAsPossible,
+            )
+            .await
+            .unwrap();
             done_tx.send(r).await.unwrap();
         });
     }
     drop(done_tx);
 
     let mut gw = gw;
-    let mut reorder = Reorderer::new(ReorderConfig { horizon_windows: 32 });
+    let mut reorder = Reorderer::new(ReorderConfig {
+        horizon_windows: 32,
+    });
     let mut events = Vec::new();
     let mut reports = Vec::new();
     loop {
@@ -141,7 +157,12 @@ async fn faulty_links_deliver_every_intact_window_once_in_order() {
                 .entry((p.stream(), p.header.capture_id))
                 .or_default()
                 .push(p.header.seq),
-            ReorderEvent::Gap { stream, capture_id, from_seq, count } => gaps
+            ReorderEvent::Gap {
+                stream,
+                capture_id,
+                from_seq,
+                count,
+            } => gaps
                 .entry((*stream, *capture_id))
                 .or_default()
                 .extend(*from_seq..from_seq + count),
@@ -152,10 +173,23 @@ async fn faulty_links_deliver_every_intact_window_once_in_order() {
     let mut lost: BTreeMap<(StreamId, u32), BTreeSet<u64>> = BTreeMap::new();
     let (mut dropped, mut corrupted, mut dups, mut swaps, mut reboots) = (0, 0, 0, 0, 0);
     for r in &reports {
-        for WindowKey { stream, capture_id, seq } in &r.delivered {
-            expected.entry((*stream, *capture_id)).or_default().insert(*seq);
+        for WindowKey {
+            stream,
+            capture_id,
+            seq,
+        } in &r.delivered
+        {
+            expected
+                .entry((*stream, *capture_id))
+                .or_default()
+                .insert(*seq);
         }
-        for WindowKey { stream, capture_id, seq } in r.lost() {
+        for WindowKey {
+            stream,
+            capture_id,
+            seq,
+        } in r.lost()
+        {
             lost.entry((stream, capture_id)).or_default().insert(seq);
         }
         dropped += r.dropped.len();
@@ -164,8 +198,14 @@ async fn faulty_links_deliver_every_intact_window_once_in_order() {
         swaps += r.reordered;
         reboots += r.reboots;
     }
-    assert!(dropped > 0 && dups > 0 && swaps > 0 && corrupted > 0 && reboots > 0, "plan too mild");
-    assert_eq!(windows.keys().collect::<Vec<_>>(), expected.keys().collect::<Vec<_>>());
+    assert!(
+        dropped > 0 && dups > 0 && swaps > 0 && corrupted > 0 && reboots > 0,
+        "plan too mild"
+    );
+    assert_eq!(
+        windows.keys().collect::<Vec<_>>(),
+        expected.keys().collect::<Vec<_>>()
+    );
     for (key, seqs) in &windows {
         let want: Vec<u64> = expected[key].iter().copied().collect();
         assert_eq!(seqs, &want, "{key:?}: every intact window once, in order");
@@ -175,10 +215,18 @@ async fn faulty_links_deliver_every_intact_window_once_in_order() {
             .get(key)
             .map(|l| l.iter().copied().filter(|&s| s < last).collect())
             .unwrap_or_default();
-        assert_eq!(gaps.get(key).cloned().unwrap_or_default(), want_gaps, "{key:?}");
+        assert_eq!(
+            gaps.get(key).cloned().unwrap_or_default(),
+            want_gaps,
+            "{key:?}"
+        );
     }
     for s in reorder.streams() {
-        assert_eq!(reorder.stats(s).unwrap().late, 0, "{s}: horizon covers the reordering");
+        assert_eq!(
+            reorder.stats(s).unwrap().late,
+            0,
+            "{s}: horizon covers the reordering"
+        );
     }
 }
 
@@ -201,7 +249,9 @@ async fn connection_cap_holds_extra_connections_in_the_backlog() {
     let mut c = TcpStream::connect(gw.addr).await.unwrap();
     c.write_all(&frames[2]).await.unwrap();
     assert!(
-        tokio::time::timeout(Duration::from_millis(200), gw.rx.recv()).await.is_err(),
+        tokio::time::timeout(Duration::from_millis(200), gw.rx.recv())
+            .await
+            .is_err(),
         "a third connection must wait for a permit"
     );
     assert_eq!(gw.stats.snapshot().connections_active, 2);
@@ -231,7 +281,9 @@ async fn failed_authentication_is_counted_and_closes_the_connection() {
             assert!(gw.rx.recv().await.unwrap().is_authenticated());
             let mut ack = [0u8; 52];
             s.read_exact(&mut ack).await.unwrap();
-            right.verify(&ack).expect("acks to enrolled nodes are signed");
+            right
+                .verify(&ack)
+                .expect("acks to enrolled nodes are signed");
         } else {
             // The gateway closes: EOF (or reset) without any ack.
             let n = s.read_to_end(&mut buf).await.unwrap_or(0);
@@ -239,7 +291,14 @@ async fn failed_authentication_is_counted_and_closes_the_connection() {
         }
     }
     let snap = gw.stats.snapshot();
-    assert_eq!((snap.auth_failures, snap.connections_rejected, snap.frames_accepted), (2, 2, 1));
+    assert_eq!(
+        (
+            snap.auth_failures,
+            snap.connections_rejected,
+            snap.frames_accepted
+        ),
+        (2, 2, 1)
+    );
     gw.shutdown().await;
 }
 
@@ -259,7 +318,14 @@ async fn corrupt_frame_closes_and_invalid_window_is_skipped() {
     let mut rest = Vec::new();
     assert_eq!(s.read_to_end(&mut rest).await.unwrap_or(0), 0);
     let snap = gw.stats.snapshot();
-    assert_eq!((snap.validation_errors, snap.crc_errors, snap.connections_rejected), (1, 1, 1));
+    assert_eq!(
+        (
+            snap.validation_errors,
+            snap.crc_errors,
+            snap.connections_rejected
+        ),
+        (1, 1, 1)
+    );
     assert!(gw.rx.try_recv().is_err());
     gw.shutdown().await;
 }

@@ -47,10 +47,22 @@ fn vector_1_delta_varint() {
     let bytes = unhex(V1);
     let p = window(&bytes);
     let h = p.header;
-    assert_eq!(h.stream, StreamId { node: 7, channel: 1 });
+    assert_eq!(
+        h.stream,
+        StreamId {
+            node: 7,
+            channel: 1
+        }
+    );
     assert_eq!((h.capture_id, h.seq), (0x0A0B_0C0D, 3));
-    assert_eq!((h.sample_rate_hz, h.window_len, h.hop_len), (25_600.0, 64, 32));
-    assert_eq!((h.t0_us, h.units, h.scale, h.adc_bits), (T0, Units::MetersPerSecond2, 0.001, 12));
+    assert_eq!(
+        (h.sample_rate_hz, h.window_len, h.hop_len),
+        (25_600.0, 64, 32)
+    );
+    assert_eq!(
+        (h.t0_us, h.units, h.scale, h.adc_bits),
+        (T0, Units::MetersPerSecond2, 0.001, 12)
+    );
     assert_eq!(p.index_coding, IndexCoding::DeltaVarint);
     assert_eq!(p.indices, [2, 3, 10, 40, 63]);
     assert_eq!(p.raw, RawValues::I16(vec![100, -100, 2047, -2048, 0]));
@@ -64,9 +76,21 @@ fn vector_2_seeded() {
     let bytes = unhex(V2);
     let p = window(&bytes);
     let h = p.header;
-    assert_eq!(h.stream, StreamId { node: 9, channel: 0 });
-    assert_eq!((h.capture_id, h.seq, h.window_len, h.hop_len), (1, 0, 16, 16));
-    assert_eq!((h.sample_rate_hz, h.t0_us, h.units), (48_000.0, T0 + 500, Units::Pascal));
+    assert_eq!(
+        h.stream,
+        StreamId {
+            node: 9,
+            channel: 0
+        }
+    );
+    assert_eq!(
+        (h.capture_id, h.seq, h.window_len, h.hop_len),
+        (1, 0, 16, 16)
+    );
+    assert_eq!(
+        (h.sample_rate_hz, h.t0_us, h.units),
+        (48_000.0, T0 + 500, Units::Pascal)
+    );
     assert_eq!((h.scale, h.adc_bits), (0.5, 16));
     assert_eq!(p.index_coding, IndexCoding::Seeded { seed: 0xDEAD_BEEF });
     assert_eq!(p.indices, [0, 3, 4, 13]);
@@ -80,10 +104,22 @@ fn vector_3_bitmap_authenticated() {
     let bytes = unhex(V3);
     let p = window(&bytes);
     let h = p.header;
-    assert_eq!(h.stream, StreamId { node: 11, channel: 2 });
-    assert_eq!((h.capture_id, h.seq, h.window_len, h.hop_len), (77, 1000, 32, 16));
+    assert_eq!(
+        h.stream,
+        StreamId {
+            node: 11,
+            channel: 2
+        }
+    );
+    assert_eq!(
+        (h.capture_id, h.seq, h.window_len, h.hop_len),
+        (77, 1000, 32, 16)
+    );
     assert_eq!((h.sample_rate_hz, h.t0_us), (10_000.0, T0 + 3_200_000));
-    assert_eq!((h.units, h.scale, h.adc_bits), (Units::StandardGravity, 1.0 / 16384.0, 16));
+    assert_eq!(
+        (h.units, h.scale, h.adc_bits),
+        (Units::StandardGravity, 1.0 / 16384.0, 16)
+    );
     assert_eq!(p.index_coding, IndexCoding::Bitmap);
     assert_eq!(p.indices, [0, 5, 9, 14, 15, 20, 27, 31]);
     assert_eq!(p.raw, RawValues::I16(vec![1, 2, 3, 4, -1, -2, -3, -4]));
@@ -102,7 +138,13 @@ fn vector_4_ack() {
     let Frame::Ack(a) = wire::parse(&bytes, &Limits::default()).unwrap() else {
         panic!("expected an ack")
     };
-    assert_eq!(a.stream, StreamId { node: 7, channel: 1 });
+    assert_eq!(
+        a.stream,
+        StreamId {
+            node: 7,
+            channel: 1
+        }
+    );
     assert_eq!((a.capture_id, a.seq), (0x0A0B_0C0D, 3));
     let mut out = BytesMut::new();
     wire::encode_ack(&a, None, &mut out);
@@ -111,10 +153,19 @@ fn vector_4_ack() {
 
 #[test]
 fn control_frame_round_trip() {
-    let c = wire::Control::sampling_advice(StreamId { node: 3, channel: 1 }, 512);
+    let c = wire::Control::sampling_advice(
+        StreamId {
+            node: 3,
+            channel: 1,
+        },
+        512,
+    );
     let mut out = BytesMut::new();
     wire::encode_control(&c, None, &mut out).unwrap();
-    assert_eq!(wire::parse(&out, &Limits::default()).unwrap(), Frame::Control(c));
+    assert_eq!(
+        wire::parse(&out, &Limits::default()).unwrap(),
+        Frame::Control(c)
+    );
 }
 
 #[test]
@@ -141,7 +192,10 @@ fn pcg32_and_sampling_vectors() {
 
 fn header() -> WindowHeader {
     WindowHeader {
-        stream: StreamId { node: 5, channel: 2 },
+        stream: StreamId {
+            node: 5,
+            channel: 2,
+        },
         capture_id: 9,
         seq: 17,
         sample_rate_hz: 25_600.0,
@@ -168,34 +222,69 @@ fn validation_errors_name_the_field() {
     let ok_idx = || Sampling::Explicit(vec![1, 2, 3]);
     let mut h = header();
     h.sample_rate_hz = f64::NAN;
-    assert_eq!(field_of(Packet::new(h, ok_idx(), ok_vals())).0, Field::SampleRate);
+    assert_eq!(
+        field_of(Packet::new(h, ok_idx(), ok_vals())).0,
+        Field::SampleRate
+    );
     let mut h = header();
     h.window_len = 8;
-    assert_eq!(field_of(Packet::new(h, ok_idx(), ok_vals())).0, Field::WindowLen);
+    assert_eq!(
+        field_of(Packet::new(h, ok_idx(), ok_vals())).0,
+        Field::WindowLen
+    );
     let mut h = header();
     h.hop_len = 0;
-    assert_eq!(field_of(Packet::new(h, ok_idx(), ok_vals())).0, Field::HopLen);
+    assert_eq!(
+        field_of(Packet::new(h, ok_idx(), ok_vals())).0,
+        Field::HopLen
+    );
     let mut h = header();
     h.hop_len = 65;
-    assert!(field_of(Packet::new(h, ok_idx(), ok_vals())).1.contains("65"));
+    assert!(field_of(Packet::new(h, ok_idx(), ok_vals()))
+        .1
+        .contains("65"));
     let mut h = header();
     h.adc_bits = 25;
-    assert_eq!(field_of(Packet::new(h, ok_idx(), ok_vals())).0, Field::AdcBits);
+    assert_eq!(
+        field_of(Packet::new(h, ok_idx(), ok_vals())).0,
+        Field::AdcBits
+    );
     let mut h = header();
     h.scale = 0.0;
-    assert_eq!(field_of(Packet::new(h, ok_idx(), ok_vals())).0, Field::Scale);
+    assert_eq!(
+        field_of(Packet::new(h, ok_idx(), ok_vals())).0,
+        Field::Scale
+    );
     let seeded = Sampling::Seeded { seed: 1, m: 65 };
-    assert_eq!(field_of(Packet::new(header(), seeded, ok_vals())).0, Field::SampleCount);
+    assert_eq!(
+        field_of(Packet::new(header(), seeded, ok_vals())).0,
+        Field::SampleCount
+    );
     let unsorted = Sampling::Explicit(vec![3, 2, 1]);
-    assert_eq!(field_of(Packet::new(header(), unsorted, ok_vals())).0, Field::Indices);
+    assert_eq!(
+        field_of(Packet::new(header(), unsorted, ok_vals())).0,
+        Field::Indices
+    );
     let repeated = Sampling::Explicit(vec![1, 1, 2]);
-    assert_eq!(field_of(Packet::new(header(), repeated, ok_vals())).0, Field::Indices);
+    assert_eq!(
+        field_of(Packet::new(header(), repeated, ok_vals())).0,
+        Field::Indices
+    );
     let outside = Sampling::Explicit(vec![1, 2, 64]);
-    assert_eq!(field_of(Packet::new(header(), outside, ok_vals())).0, Field::Indices);
+    assert_eq!(
+        field_of(Packet::new(header(), outside, ok_vals())).0,
+        Field::Indices
+    );
     let short = RawValues::I16(vec![1, 2]);
-    assert_eq!(field_of(Packet::new(header(), ok_idx(), short)).0, Field::Values);
+    assert_eq!(
+        field_of(Packet::new(header(), ok_idx(), short)).0,
+        Field::Values
+    );
     let out_of_adc = RawValues::I16(vec![1, 2, 2048]);
-    assert_eq!(field_of(Packet::new(header(), ok_idx(), out_of_adc)).0, Field::Values);
+    assert_eq!(
+        field_of(Packet::new(header(), ok_idx(), out_of_adc)).0,
+        Field::Values
+    );
     // An unknown units code can only come off the wire: patch vector 1 (offset 18) and fix
     // its CRC.
     let mut bytes = unhex(V1);
@@ -214,7 +303,13 @@ fn validation_errors_name_the_field() {
 
 fn arb_packet() -> impl Strategy<Value = Packet> {
     (
-        (any::<u32>(), any::<u16>(), any::<u32>(), any::<u64>(), 16u32..=512),
+        (
+            any::<u32>(),
+            any::<u16>(),
+            any::<u32>(),
+            any::<u64>(),
+            16u32..=512,
+        ),
         (1.0f64..1e6, any::<i64>(), 0u8..=6, 1u8..=24, 1e-6f64..10.0),
         (0u8..3, any::<u64>(), any::<bool>(), any::<u64>()),
     )
@@ -222,38 +317,48 @@ fn arb_packet() -> impl Strategy<Value = Packet> {
             let n = ids.4;
             (Just((ids, grid, coding)), 1..=n, 1..=n)
         })
-        .prop_map(|(((node, channel, capture_id, seq, n), (rate, t0, units, bits, scale), (coding, seed, f32s, vseed)), hop, m)| {
-            let header = WindowHeader {
-                stream: StreamId { node, channel },
-                capture_id,
-                seq,
-                sample_rate_hz: rate,
-                window_len: n,
-                hop_len: hop,
-                t0_us: t0,
-                units: Units::from_code(units).unwrap(),
-                scale,
-                adc_bits: bits,
-            };
-            let mut rng = Pcg32::new(vseed, 7);
-            let idx = sample_indices(seed, n, m);
-            let sampling = match coding {
-                0 => Sampling::Coded(IndexCoding::DeltaVarint, idx),
-                1 => Sampling::Coded(IndexCoding::Bitmap, idx),
-                _ => Sampling::Seeded { seed, m },
-            };
-            let half = 1i32 << (bits.min(16) - 1);
-            let raw = if f32s {
-                RawValues::F32((0..m).map(|_| rng.unit_f64() as f32 * 2.0 - 1.0).collect())
-            } else {
-                RawValues::I16(
-                    (0..m)
-                        .map(|_| (rng.bounded(2 * half as u32) as i32 - half) as i16)
-                        .collect(),
-                )
-            };
-            Packet::new(header, sampling, raw).expect("generated packets are valid")
-        })
+        .prop_map(
+            |(
+                (
+                    (node, channel, capture_id, seq, n),
+                    (rate, t0, units, bits, scale),
+                    (coding, seed, f32s, vseed),
+                ),
+                hop,
+                m,
+            )| {
+                let header = WindowHeader {
+                    stream: StreamId { node, channel },
+                    capture_id,
+                    seq,
+                    sample_rate_hz: rate,
+                    window_len: n,
+                    hop_len: hop,
+                    t0_us: t0,
+                    units: Units::from_code(units).unwrap(),
+                    scale,
+                    adc_bits: bits,
+                };
+                let mut rng = Pcg32::new(vseed, 7);
+                let idx = sample_indices(seed, n, m);
+                let sampling = match coding {
+                    0 => Sampling::Coded(IndexCoding::DeltaVarint, idx),
+                    1 => Sampling::Coded(IndexCoding::Bitmap, idx),
+                    _ => Sampling::Seeded { seed, m },
+                };
+                let half = 1i32 << (bits.min(16) - 1);
+                let raw = if f32s {
+                    RawValues::F32((0..m).map(|_| rng.unit_f64() as f32 * 2.0 - 1.0).collect())
+                } else {
+                    RawValues::I16(
+                        (0..m)
+                            .map(|_| (rng.bounded(2 * half as u32) as i32 - half) as i16)
+                            .collect(),
+                    )
+                };
+                Packet::new(header, sampling, raw).expect("generated packets are valid")
+            },
+        )
 }
 
 proptest! {
@@ -310,7 +415,10 @@ fn every_single_bit_flip_of_the_vectors_is_rejected() {
             bad[bit / 8] ^= 1 << (bit % 8);
             assert!(wire::parse(&bad, &Limits::default()).is_err(), "bit {bit}");
             let mut buf = BytesMut::from(&bad[..]);
-            assert!(!matches!(FrameCodec::default().decode(&mut buf), Ok(Some(_))), "bit {bit}");
+            assert!(
+                !matches!(FrameCodec::default().decode(&mut buf), Ok(Some(_))),
+                "bit {bit}"
+            );
         }
     }
 }
@@ -322,7 +430,10 @@ fn oversized_length_is_refused_before_buffering() {
     let mut buf = BytesMut::from(&bytes[..]);
     assert!(FrameCodec::new(4096).decode(&mut buf).is_err());
     let mut small = BytesMut::from(&unhex(V1)[..]);
-    assert!(FrameCodec::new(64).decode(&mut small).is_err(), "91-byte frame over a 64-byte cap");
+    assert!(
+        FrameCodec::new(64).decode(&mut small).is_err(),
+        "91-byte frame over a 64-byte cap"
+    );
 }
 
 fn log_with(frames: &[Vec<u8>], dir: &std::path::Path) -> std::path::PathBuf {

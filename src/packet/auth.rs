@@ -38,7 +38,9 @@ impl NodeKey {
     pub fn from_hex(hex: &str) -> Result<NodeKey, AuthError> {
         let hex = hex.trim();
         if hex.len() % 2 != 0 || !hex.bytes().all(|b| b.is_ascii_hexdigit()) {
-            return Err(AuthError::BadKey("key must be an even number of hex digits".into()));
+            return Err(AuthError::BadKey(
+                "key must be an even number of hex digits".into(),
+            ));
         }
         let bytes: Vec<u8> = (0..hex.len())
             .step_by(2)
@@ -66,12 +68,16 @@ impl NodeKey {
     /// Checks the tag of a whole frame (one that passed [`wire::check`]), in constant time.
     pub fn verify(&self, frame: &[u8]) -> Result<(), AuthError> {
         let Some(tag_at) = tag_offset(frame) else {
-            return Err(AuthError::MissingTag { node: frame_node(frame) });
+            return Err(AuthError::MissingTag {
+                node: frame_node(frame),
+            });
         };
         let mut mac = HmacSha256::new_from_slice(&self.0).expect("HMAC takes keys of any length");
         mac.update(&frame[..tag_at]);
         mac.verify_truncated_left(&frame[tag_at..tag_at + TAG_LEN])
-            .map_err(|_| AuthError::BadTag { node: frame_node(frame) })
+            .map_err(|_| AuthError::BadTag {
+                node: frame_node(frame),
+            })
     }
 }
 

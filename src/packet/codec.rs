@@ -32,7 +32,9 @@ impl RawFrame {
 
     /// Wraps bytes this crate just encoded.
     pub(crate) fn from_trusted(bytes: Bytes) -> RawFrame {
-        debug_assert!(matches!(wire::check(&bytes, wire::MAX_FRAME_LEN), Ok(Some(l)) if l == bytes.len()));
+        debug_assert!(
+            matches!(wire::check(&bytes, wire::MAX_FRAME_LEN), Ok(Some(l)) if l == bytes.len())
+        );
         RawFrame(bytes)
     }
 
@@ -172,8 +174,7 @@ impl Encoder<&Frame> for FrameCodec {
     type Error = CodecError;
 
     fn encode(&mut self, item: &Frame, dst: &mut BytesMut) -> Result<(), CodecError> {
-        item.encode(None, dst).map_err(|e| {
-            CodecError::Io(std::io::Error::new(std::io::ErrorKind::InvalidInput, e))
-        })
+        item.encode(None, dst)
+            .map_err(|e| CodecError::Io(std::io::Error::new(std::io::ErrorKind::InvalidInput, e)))
     }
 }

@@ -277,7 +277,9 @@ impl Packet {
     ) -> Result<Packet, ValidationError> {
         validate::validate_header(&header, limits)?;
         let (index_coding, indices) = match sampling {
-            Sampling::Explicit(idx) => (wire::smaller_explicit_coding(&idx, header.window_len), idx),
+            Sampling::Explicit(idx) => {
+                (wire::smaller_explicit_coding(&idx, header.window_len), idx)
+            }
             Sampling::Coded(IndexCoding::Seeded { seed }, _) => {
                 return Err(ValidationError::new(
                     &header,

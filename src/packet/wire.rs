@@ -536,7 +536,9 @@ fn parse_window(
                 prev = Some(i);
             }
             if idx.len() != m as usize {
-                return Err(bad_block(format!("{} varints for sample_count {m}", idx.len())).into());
+                return Err(
+                    bad_block(format!("{} varints for sample_count {m}", idx.len())).into(),
+                );
             }
             (IndexCoding::DeltaVarint, idx)
         }
@@ -569,7 +571,9 @@ fn parse_window(
         }
         _ => {
             if block.len() != 8 {
-                return Err(bad_block(format!("seed block of {} bytes, needs 8", block.len())).into());
+                return Err(
+                    bad_block(format!("seed block of {} bytes, needs 8", block.len())).into(),
+                );
             }
             let seed = u64::from_le_bytes(block.try_into().expect("8 bytes"));
             (
@@ -718,7 +722,11 @@ fn finish(dst: &mut BytesMut, start: usize, key: Option<&NodeKey>, carried: Opti
 ///
 /// The packet is re-validated with limits wide enough for any well-formed frame (window length
 /// 1..=2^24) but without regenerating seeded indices; use [`validate::validate`] for that.
-pub fn encode_window(p: &Packet, key: Option<&NodeKey>, dst: &mut BytesMut) -> Result<(), EncodeError> {
+pub fn encode_window(
+    p: &Packet,
+    key: Option<&NodeKey>,
+    dst: &mut BytesMut,
+) -> Result<(), EncodeError> {
     let wide = Limits {
         max_frame_len: MAX_FRAME_LEN,
         min_window_len: 1,
@@ -799,7 +807,12 @@ pub fn encode_ack(a: &Ack, key: Option<&NodeKey>, dst: &mut BytesMut) {
     let authenticated = key.is_some() || a.auth_tag.is_some();
     let len = ACK_LEN + if authenticated { TAG_LEN } else { 0 };
     let start = dst.len();
-    put_header(dst, len, KIND_ACK, if authenticated { FLAG_AUTH } else { 0 });
+    put_header(
+        dst,
+        len,
+        KIND_ACK,
+        if authenticated { FLAG_AUTH } else { 0 },
+    );
     dst.put_u32_le(a.stream.node);
     dst.put_u16_le(a.stream.channel);
     dst.put_u16_le(0);
@@ -809,7 +822,11 @@ pub fn encode_ack(a: &Ack, key: Option<&NodeKey>, dst: &mut BytesMut) {
 }
 
 /// Appends a control frame. Fails when a TLV value exceeds 255 bytes.
-pub fn encode_control(c: &Control, key: Option<&NodeKey>, dst: &mut BytesMut) -> Result<(), EncodeError> {
+pub fn encode_control(
+    c: &Control,
+    key: Option<&NodeKey>,
+    dst: &mut BytesMut,
+) -> Result<(), EncodeError> {
     let authenticated = key.is_some() || c.auth_tag.is_some();
     let body: usize = c.fields.iter().map(|f| 2 + f.value.len()).sum();
     let len = CONTROL_FIXED_LEN + body + if authenticated { TAG_LEN } else { 0 } + CRC_LEN;
@@ -826,7 +843,12 @@ pub fn encode_control(c: &Control, key: Option<&NodeKey>, dst: &mut BytesMut) ->
         });
     }
     let start = dst.len();
-    put_header(dst, len, KIND_CONTROL, if authenticated { FLAG_AUTH } else { 0 });
+    put_header(
+        dst,
+        len,
+        KIND_CONTROL,
+        if authenticated { FLAG_AUTH } else { 0 },
+    );
     dst.put_u32_le(c.stream.node);
     dst.put_u16_le(c.stream.channel);
     dst.put_u8(c.msg_type);
@@ -862,7 +884,11 @@ mod tests {
         // 300 = 0xAC 0x02 is the LEB128 example of the DWARF specification (section 7.6).
         assert_eq!(read_varint(&[0xAC, 0x02]), Some((300, 2)));
         assert_eq!(read_varint(&[0x80, 0x00]), None, "overlong zero");
-        assert_eq!(read_varint(&[0xff, 0xff, 0xff, 0xff, 0x1f]), None, "33 bits");
+        assert_eq!(
+            read_varint(&[0xff, 0xff, 0xff, 0xff, 0x1f]),
+            None,
+            "33 bits"
+        );
         assert_eq!(read_varint(&[0x80]), None, "unterminated");
     }
 }

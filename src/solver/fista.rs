@@ -194,14 +194,15 @@ pub fn fista<T: Real, O: LinearOperator<T> + ?Sized>(
         // Dual point nu = (y - A y_k) min(1, lambda / ||A^T (y - A y_k)||_inf) (CHECK-VALUES 6.5);
         // D(nu) = 0.5||y||^2 - 0.5||y - nu||^2 with y - nu = y + scale r.
         let corr = grad.iter().fold(T::zero(), |a, &g| a.max(g.abs()));
-        let scale = if corr > lambda { lambda / corr } else { T::one() };
-        let dist_sq = r
-            .iter()
-            .zip(y)
-            .fold(T::zero(), |a, (&ri, &yi)| {
-                let d = yi + scale * ri;
-                a + d * d
-            });
+        let scale = if corr > lambda {
+            lambda / corr
+        } else {
+            T::one()
+        };
+        let dist_sq = r.iter().zip(y).fold(T::zero(), |a, (&ri, &yi)| {
+            let d = yi + scale * ri;
+            a + d * d
+        });
         let dual = half * (y_sq - dist_sq);
 
         // x_k = S_{lambda/L}(y_k - grad/L), with y_k formed on the fly and x_{k-1} moved into
@@ -283,7 +284,11 @@ pub fn duality_gap<T: Real, O: LinearOperator<T> + ?Sized>(
     let mut c = vec![T::zero(); op.cols()];
     op.adjoint(&r, &mut c);
     let corr = c.iter().fold(T::zero(), |a, &v| a.max(v.abs()));
-    let scale = if corr > lambda { lambda / corr } else { T::one() };
+    let scale = if corr > lambda {
+        lambda / corr
+    } else {
+        T::one()
+    };
     let half = T::of(0.5);
     let res_sq = r.iter().fold(T::zero(), |a, &v| a + v * v);
     let l1 = s.iter().fold(T::zero(), |a, &v| a + v.abs());

@@ -36,8 +36,8 @@ pub mod fista;
 pub mod operator;
 
 pub use fista::{
-    duality_gap, fista, lasso_objective, next_momentum, soft_threshold, FistaOptions,
-    FistaOutcome, FistaStop, FistaWork,
+    duality_gap, fista, lasso_objective, next_momentum, soft_threshold, FistaOptions, FistaOutcome,
+    FistaStop, FistaWork,
 };
 pub use operator::{
     estimate_operator_norm, validate_indices, DenseOperator, IndexError, LinearOperator,
@@ -499,7 +499,17 @@ pub fn solve_with_operator<T: Real, O: LinearOperator<T> + ?Sized>(
             );
         }
         Form::Exact => {
-            let refit = exact(op, y, y_norm, lambda_max, settings, &options, &mut s, &mut report, ws);
+            let refit = exact(
+                op,
+                y,
+                y_norm,
+                lambda_max,
+                settings,
+                &options,
+                &mut s,
+                &mut report,
+                ws,
+            );
             return Ok(finish(refit, s, report));
         }
     }
@@ -515,7 +525,11 @@ pub fn solve_with_operator<T: Real, O: LinearOperator<T> + ?Sized>(
     Ok(finish(s, lasso, report))
 }
 
-fn finish<T: Real>(coefficients: Vec<T>, lasso: Vec<T>, report: SolveReport) -> OperatorSolution<T> {
+fn finish<T: Real>(
+    coefficients: Vec<T>,
+    lasso: Vec<T>,
+    report: SolveReport,
+) -> OperatorSolution<T> {
     OperatorSolution {
         coefficients,
         lasso_coefficients: lasso,
@@ -722,8 +736,8 @@ fn constrained<T: Real, O: LinearOperator<T> + ?Sized>(
     let mut hi = (lambda_max.to_f64_(), norm2(y).to_f64_());
     let mut lo: Option<(f64, f64)> = None;
     // First guess: the universal threshold for sigma = eps / sqrt(m).
-    let mut lambda = (target / (m as f64).sqrt() * universal_factor::<f64>(n))
-        .clamp(hi.0 * 1e-6, hi.0 * 0.9);
+    let mut lambda =
+        (target / (m as f64).sqrt() * universal_factor::<f64>(n)).clamp(hi.0 * 1e-6, hi.0 * 0.9);
     for _ in 0..60 {
         let out = run_lasso(op, y, T::of(lambda), lambda_max, options, s, report, ws);
         let res = out.residual_norm.to_f64_();
@@ -744,7 +758,10 @@ fn constrained<T: Real, O: LinearOperator<T> + ?Sized>(
                 let (a, b) = (l_lo.ln(), hi.0.ln());
                 let g = guess.ln();
                 // Keep the secant step well inside the bracket, else bisect (in log).
-                if slope.is_finite() && slope > 0.0 && g > a + 0.05 * (b - a) && g < b - 0.05 * (b - a)
+                if slope.is_finite()
+                    && slope > 0.0
+                    && g > a + 0.05 * (b - a)
+                    && g < b - 0.05 * (b - a)
                 {
                     guess
                 } else {

@@ -84,8 +84,8 @@ impl IngestConfig {
                 .trim()
                 .parse()
                 .map_err(|_| AuthError::BadKey(format!("node id {node:?} is not a u32")))?;
-            let key = NodeKey::from_hex(hex)
-                .map_err(|e| AuthError::BadKey(format!("node {id}: {e}")))?;
+            let key =
+                NodeKey::from_hex(hex).map_err(|e| AuthError::BadKey(format!("node {id}: {e}")))?;
             ring.insert(id, key);
         }
         Ok(ring)

@@ -111,7 +111,12 @@ pub struct SendReport {
 impl SendReport {
     /// Windows that did not go out intact: dropped or corrupted, sorted.
     pub fn lost(&self) -> Vec<WindowKey> {
-        let mut v: Vec<WindowKey> = self.dropped.iter().chain(&self.corrupted).copied().collect();
+        let mut v: Vec<WindowKey> = self
+            .dropped
+            .iter()
+            .chain(&self.corrupted)
+            .copied()
+            .collect();
         v.sort();
         v
     }
@@ -326,7 +331,10 @@ async fn run_plan(
     report.acks_received += conn.close().await?;
     damaged.sort();
     damaged.dedup();
-    report.corrupted = damaged.into_iter().filter(|k| !intact.contains(k)).collect();
+    report.corrupted = damaged
+        .into_iter()
+        .filter(|k| !intact.contains(k))
+        .collect();
     report.dropped.sort();
     Ok(report)
 }

@@ -150,7 +150,11 @@ impl ReorderBuffer {
     /// # Panics
     /// If the packet belongs to another stream (a routing bug; use [`Reorderer`]).
     pub fn push(&mut self, packet: Packet) -> impl Iterator<Item = ReorderEvent> {
-        assert_eq!(packet.stream(), self.stream, "packet routed to the wrong stream");
+        assert_eq!(
+            packet.stream(),
+            self.stream,
+            "packet routed to the wrong stream"
+        );
         let mut out = Vec::new();
         let (capture_id, seq) = (packet.header.capture_id, packet.header.seq);
         if self.capture.as_ref().is_some_and(|c| c.id != capture_id) {
@@ -324,7 +328,10 @@ mod tests {
 
     fn pkt(capture_id: u32, seq: u64) -> Packet {
         let header = WindowHeader {
-            stream: StreamId { node: 1, channel: 0 },
+            stream: StreamId {
+                node: 1,
+                channel: 0,
+            },
             capture_id,
             seq,
             sample_rate_hz: 1000.0,
@@ -335,18 +342,33 @@ mod tests {
             scale: 1.0,
             adc_bits: 12,
         };
-        Packet::new(header, Sampling::Explicit(vec![1, 5]), RawValues::I16(vec![0, 0])).unwrap()
+        Packet::new(
+            header,
+            Sampling::Explicit(vec![1, 5]),
+            RawValues::I16(vec![0, 0]),
+        )
+        .unwrap()
     }
 
     fn summary(events: impl Iterator<Item = ReorderEvent>) -> Vec<String> {
         events
             .map(|e| match e {
-                ReorderEvent::CaptureStart { capture_id, first_seq, .. } => {
+                ReorderEvent::CaptureStart {
+                    capture_id,
+                    first_seq,
+                    ..
+                } => {
                     format!("start {capture_id}@{first_seq}")
                 }
                 ReorderEvent::Window(p) => format!("w{}", p.header.seq),
-                ReorderEvent::Gap { from_seq, count, .. } => format!("gap {from_seq}+{count}"),
-                ReorderEvent::CaptureEnd { capture_id, next_seq, .. } => {
+                ReorderEvent::Gap {
+                    from_seq, count, ..
+                } => format!("gap {from_seq}+{count}"),
+                ReorderEvent::CaptureEnd {
+                    capture_id,
+                    next_seq,
+                    ..
+                } => {
                     format!("end {capture_id}@{next_seq}")
                 }
             })
@@ -355,7 +377,13 @@ mod tests {
 
     #[test]
     fn reorders_dedups_and_declares_gaps() {
-        let mut r = ReorderBuffer::new(StreamId { node: 1, channel: 0 }, &ReorderConfig { horizon_windows: 3 });
+        let mut r = ReorderBuffer::new(
+            StreamId {
+                node: 1,
+                channel: 0,
+            },
+            &ReorderConfig { horizon_windows: 3 },
+        );
         let mut ev = Vec::new();
         for seq in [1, 0, 0, 2, 5, 6, 7, 3, 8, 9] {
             ev.extend(summary(r.push(pkt(9, seq))));
@@ -363,29 +391,65 @@ mod tests {
         ev.extend(summary(r.flush()));
         assert_eq!(
             ev,
-            ["start 9@0", "w0", "w1", "w2", "gap 3+2", "w5", "w6", "w7", "w8", "w9", "end 9@10"]
+            [
+                "start 9@0",
+                "w0",
+                "w1",
+                "w2",
+                "gap 3+2",
+                "w5",
+                "w6",
+                "w7",
+                "w8",
+                "w9",
+                "end 9@10"
+            ]
         );
         let s = r.stats();
-        assert_eq!((s.duplicates, s.late, s.lost_windows, s.windows), (1, 1, 2, 8));
+        assert_eq!(
+            (s.duplicates, s.late, s.lost_windows, s.windows),
+            (1, 1, 2, 8)
+        );
     }
 
     #[test]
     fn new_capture_flushes_old_and_stale_capture_is_late() {
-        let mut r = ReorderBuffer::new(StreamId { node: 1, channel: 0 }, &ReorderConfig { horizon_windows: 4 });
+        let mut r = ReorderBuffer::new(
+            StreamId {
+                node: 1,
+                channel: 0,
+            },
+            &ReorderConfig { horizon_windows: 4 },
+        );
         let mut ev = Vec::new();
         for (c, seq) in [(1, 0), (1, 2), (2, 0), (1, 3), (2, 1)] {
             ev.extend(summary(r.push(pkt(c, seq))));
         }
         assert_eq!(
             ev,
-            ["start 1@0", "w0", "gap 1+1", "w2", "end 1@3", "start 2@0", "w0", "w1"]
+            [
+                "start 1@0",
+                "w0",
+                "gap 1+1",
+                "w2",
+                "end 1@3",
+                "start 2@0",
+                "w0",
+                "w1"
+            ]
         );
         assert_eq!(r.stats().late, 1);
     }
 
     #[test]
     fn joining_a_capture_in_progress_is_not_a_gap() {
-        let mut r = ReorderBuffer::new(StreamId { node: 1, channel: 0 }, &ReorderConfig::default());
+        let mut r = ReorderBuffer::new(
+            StreamId {
+                node: 1,
+                channel: 0,
+            },
+            &ReorderConfig::default(),
+        );
         let ev = summary(r.push(pkt(3, 1000)));
         assert_eq!(ev, ["start 3@1000", "w1000"]);
     }
