@@ -24,6 +24,8 @@ enum Command {
     Solve(commands::solve::SolveArgs),
     /// Simulate sensor nodes on machines from a scenario file: packet log or TCP, plus truth.
     Simulate(commands::simulate::SimulateArgs),
+    /// Reconstruct packet logs into one continuous HDF5 record.
+    Replay(commands::replay::ReplayArgs),
 }
 
 fn main() -> ExitCode {
@@ -34,6 +36,7 @@ fn main() -> ExitCode {
         Command::Spectrum(args) => commands::spectrum::run(args),
         Command::Solve(args) => commands::solve::run(args),
         Command::Simulate(args) => commands::simulate::run(args),
+        Command::Replay(args) => commands::replay::run(args),
     };
     match result {
         Ok(code) => code,

@@ -2,6 +2,7 @@
 
 mod basis;
 mod features;
+mod pipeline;
 mod sim;
 mod solver;
 mod store;

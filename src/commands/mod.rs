@@ -4,3 +4,13 @@ pub mod demo;
 pub mod spectrum;
 pub mod solve;
 pub mod simulate;
+pub mod replay;
+
+/// Hex SHA-256 of a configuration's JSON form, written into records so that two records made
+/// with different settings can be told apart.
+pub fn config_digest<T: serde::Serialize>(config: &T) -> String {
+    use sha2::Digest;
+    let json = serde_json::to_vec(config).unwrap_or_default();
+    let hash = sha2::Sha256::digest(&json);
+    hash.iter().map(|b| format!("{b:02x}")).collect()
+}

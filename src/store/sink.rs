@@ -39,6 +39,10 @@ pub struct SinkConfig {
     pub rotate_after: Option<Duration>,
     /// Start a new file once the current one reaches this many bytes. Default 2 GiB.
     pub rotate_bytes: Option<u64>,
+    /// Single-file mode (offline replay): write exactly this file in `folder`, never rotate,
+    /// and keep no `index.json`. Every stream must be declared before the first data message;
+    /// a stream declared later is an error. Default `None` (a rotating series).
+    pub single_file: Option<String>,
 }
 
 impl SinkConfig {
@@ -53,6 +57,7 @@ impl SinkConfig {
             flush_interval: Duration::from_secs(1),
             rotate_after: Some(Duration::from_secs(3600)),
             rotate_bytes: Some(2 << 30),
+            single_file: None,
         }
     }
 }
@@ -350,6 +355,15 @@ impl SinkState {
                 .as_ref()
                 .is_some_and(|f| f.writer.has_stream(key));
             self.streams.insert(key, meta);
+            if self.current.is_some() && self.config.single_file.is_some() {
+                return Err(StoreError::Index {
+                    path: self.config.folder.clone(),
+                    what: format!(
+                        "stream {}/{} declared after the single record file was started",
+                        key.node, key.channel
+                    ),
+                });
+            }
             if self.current.is_some() {
                 if in_file {
                     // New metadata for a stream in the file: it cannot be rewritten in SWMR.
@@ -407,6 +421,9 @@ impl SinkState {
     }
 
     fn rotation_due(&self) -> bool {
+        if self.config.single_file.is_some() {
+            return false;
+        }
         let Some(file) = &self.current else {
             return false;
         };
@@ -423,7 +440,10 @@ impl SinkState {
         if self.current.is_none() {
             let now = now_unix_ns();
             let seq = self.next_seq;
-            let name = format!("{}-{}-{seq:04}.h5", self.config.prefix, file_stamp(now));
+            let name = match &self.config.single_file {
+                Some(name) => name.clone(),
+                None => format!("{}-{}-{seq:04}.h5", self.config.prefix, file_stamp(now)),
+            };
             let path = self.config.folder.join(&name);
             let metas: Vec<StreamMeta> = self.streams.values().cloned().collect();
             let writer = RecordWriter::create_continuing(
@@ -484,6 +504,9 @@ impl SinkState {
                 .collect();
             self.index.files[file.entry].streams = streams;
         }
+        if self.config.single_file.is_some() {
+            return Ok(());
+        }
         self.index.save(&self.config.folder)
     }
 
@@ -525,6 +548,9 @@ impl SinkState {
             }
             .into(),
         );
+        if self.config.single_file.is_some() {
+            return Ok(());
+        }
         self.index.save(&self.config.folder)
     }
 }
