@@ -1,10 +1,10 @@
 //! One file per subcommand. Each exposes an `Args` struct (clap) and `run(args)`.
 
 pub mod demo;
-pub mod spectrum;
-pub mod solve;
-pub mod simulate;
 pub mod replay;
+pub mod simulate;
+pub mod solve;
+pub mod spectrum;
 
 /// Hex SHA-256 of a configuration's JSON form, written into records so that two records made
 /// with different settings can be told apart.
