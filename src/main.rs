@@ -26,6 +26,8 @@ enum Command {
     Simulate(commands::simulate::SimulateArgs),
     /// Reconstruct packet logs into one continuous HDF5 record.
     Replay(commands::replay::ReplayArgs),
+    /// Score a record against the simulator's ground truth (SNR per stream).
+    Score(commands::score::ScoreArgs),
 }
 
 fn main() -> ExitCode {
@@ -37,6 +39,7 @@ fn main() -> ExitCode {
         Command::Solve(args) => commands::solve::run(args),
         Command::Simulate(args) => commands::simulate::run(args),
         Command::Replay(args) => commands::replay::run(args),
+        Command::Score(args) => commands::score::run(args),
     };
     match result {
         Ok(code) => code,

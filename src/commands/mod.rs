@@ -2,6 +2,7 @@
 
 pub mod demo;
 pub mod replay;
+pub mod score;
 pub mod simulate;
 pub mod solve;
 pub mod spectrum;

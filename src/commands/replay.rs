@@ -3,7 +3,8 @@
 use anyhow::Context;
 use clap::Args;
 use csgate::basis::BasisKind;
-use csgate::packet::{KeyRing, Limits};
+use csgate::packet::{KeyRing, Limits, NodeKey};
+use csgate::pipeline::reconstruct::Method;
 use csgate::pipeline::reconstruct::WarmStart;
 use csgate::pipeline::replay::{replay, ReplayOptions};
 use csgate::pipeline::run::PipelineConfig;
@@ -41,6 +42,17 @@ pub struct ReplayArgs {
     /// Deflate level 1-9 for the samples (default: none; noisy float data compresses little).
     #[arg(long, value_parser = clap::value_parser!(u8).range(1..=9))]
     pub deflate: Option<u8>,
+    /// Pre-shared key of a node whose frames carry authentication tags, as NODE=HEX
+    /// (repeatable). Tagged frames of a node without a key are rejected and counted.
+    #[arg(long = "key", value_name = "NODE=HEX")]
+    pub keys: Vec<String>,
+    /// Reject every frame without a valid tag (only nodes given with --key are accepted).
+    #[arg(long)]
+    pub require_auth: bool,
+    /// Reconstruction method: `sparse` (the solver) or `linear` (linear interpolation of the
+    /// received samples, the baseline to compare with; never used for real records).
+    #[arg(long, default_value = "sparse")]
+    pub method: Method,
     /// Print the summary as one JSON object instead of text.
     #[arg(long)]
     pub json: bool,
@@ -65,13 +77,27 @@ pub fn run(args: ReplayArgs) -> anyhow::Result<ExitCode> {
     if args.cold {
         pipeline.warm_start = WarmStart::Cold;
     }
+    pipeline.method = args.method;
+    let mut keys = KeyRing::new(args.require_auth);
+    for spec in &args.keys {
+        let (node, hex) = spec
+            .split_once('=')
+            .with_context(|| format!("--key {spec:?}: expected NODE=HEX"))?;
+        let node: u32 = node
+            .trim()
+            .parse()
+            .with_context(|| format!("--key {spec:?}: node id must be a number"))?;
+        let key =
+            NodeKey::from_hex(hex.trim()).with_context(|| format!("--key for node {node}"))?;
+        keys.insert(node, key);
+    }
     let digest = super::config_digest(&pipeline);
     let opts = ReplayOptions {
         logs: args.logs.clone(),
         out: args.out.clone(),
         pipeline,
         limits: Limits::default(),
-        keys: KeyRing::new(false),
+        keys,
         deflate: args.deflate,
         config_digest: digest,
     };

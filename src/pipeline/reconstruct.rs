@@ -34,6 +34,73 @@ pub enum WarmStart {
     Previous,
 }
 
+/// How a window is turned into the full grid.
+#[derive(
+    Debug,
+    Clone,
+    Copy,
+    PartialEq,
+    Eq,
+    Default,
+    serde::Serialize,
+    serde::Deserialize,
+    clap::ValueEnum,
+)]
+#[serde(rename_all = "snake_case")]
+pub enum Method {
+    /// Sparse recovery with the solver (the product).
+    #[default]
+    Sparse,
+    /// Linear interpolation between the received samples, held constant before the first and
+    /// after the last: the plain baseline reports compare with.
+    Linear,
+}
+
+/// Linear interpolation of `values` at `indices` onto `0..n` (constant outside the range).
+pub fn linear_interpolate(indices: &[u32], values: &[f32], n: usize) -> Vec<f64> {
+    let mut out = vec![0.0; n];
+    if indices.is_empty() {
+        return out;
+    }
+    let first = indices[0] as usize;
+    let last = *indices.last().expect("non-empty") as usize;
+    for v in out.iter_mut().take(first + 1) {
+        *v = f64::from(values[0]);
+    }
+    for w in 0..indices.len().saturating_sub(1) {
+        let (a, b) = (indices[w] as usize, indices[w + 1] as usize);
+        let (ya, yb) = (f64::from(values[w]), f64::from(values[w + 1]));
+        for (j, v) in out.iter_mut().enumerate().take(b + 1).skip(a) {
+            *v = ya + (yb - ya) * (j - a) as f64 / (b - a) as f64;
+        }
+    }
+    for v in out.iter_mut().skip(last) {
+        *v = f64::from(*values.last().expect("non-empty"));
+    }
+    out
+}
+
+/// The report of a window reconstructed by interpolation: no solver ran.
+fn interpolation_report() -> SolveReport {
+    SolveReport {
+        iterations: 0,
+        fista_runs: 0,
+        objective: f64::NAN,
+        residual_norm: 0.0,
+        relative_residual: 0.0,
+        lasso_residual_norm: 0.0,
+        support: 0,
+        lambda: 0.0,
+        lambda_max: f64::NAN,
+        sigma: None,
+        relative_gap: 0.0,
+        stop: crate::solver::StopReason::MinL2,
+        converged: true,
+        debiased: false,
+        cg_steps: 0,
+    }
+}
+
 /// One window to reconstruct.
 #[derive(Debug)]
 pub struct ReconstructJob {
@@ -49,6 +116,8 @@ pub struct ReconstructJob {
     pub settings: Arc<SolveSettings>,
     /// Warm-start policy.
     pub warm_start: WarmStart,
+    /// Reconstruction method.
+    pub method: Method,
     /// The stream's state from its previous window.
     pub warm: WarmState,
 }
@@ -91,6 +160,18 @@ impl WorkerState {
         let started = Instant::now();
         let n = job.packet.header.window_len as usize;
         let mut warm = job.warm;
+        if job.method == Method::Linear {
+            let signal = linear_interpolate(&job.packet.indices, &job.packet.values, n);
+            let report = interpolation_report();
+            return ReconstructedWindow {
+                stream_slot: job.stream_slot,
+                start: job.start,
+                packet: job.packet,
+                outcome: Ok((signal, report)),
+                solve_time_us: started.elapsed().as_secs_f64() * 1e6,
+                warm,
+            };
+        }
         let outcome = self.solve(
             &job.packet,
             job.basis,

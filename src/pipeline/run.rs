@@ -57,6 +57,8 @@ pub struct PipelineConfig {
     pub solver: SolveSettings,
     /// Warm-start policy. Default: the previous window's solution.
     pub warm_start: WarmStart,
+    /// Reconstruction method. Default: sparse recovery.
+    pub method: super::reconstruct::Method,
     /// Reorder buffer settings.
     pub reorder: ReorderConfig,
     /// Windows allowed to wait for a worker, over all streams, before the dispatcher stops
@@ -78,6 +80,7 @@ impl Default for PipelineConfig {
                 ..SolveSettings::default()
             },
             warm_start: WarmStart::default(),
+            method: Default::default(),
             reorder: ReorderConfig::default(),
             max_queued_windows: 256,
         }
@@ -545,6 +548,7 @@ impl Dispatcher<'_> {
                         basis: self.config.basis,
                         settings: Arc::clone(&self.settings),
                         warm_start: self.config.warm_start,
+                        method: self.config.method,
                         warm: std::mem::take(&mut self.slots[s].warm),
                     };
                     if self.pool.submit(job).is_err() {
