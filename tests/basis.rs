@@ -3,6 +3,9 @@
 //! copied here with the call that produced them), and the algebraic properties every
 //! orthonormal basis must have (orthonormality, Parseval, adjoint identity).
 
+// Reference values are copied digit for digit as published, trailing zeros included.
+#![allow(clippy::excessive_precision)]
+
 use csgate::basis::naive::{self, DenseBasis};
 use csgate::basis::wavelet::{daubechies_rec_lo, dwt_max_level, quadrature_mirror};
 use csgate::basis::{

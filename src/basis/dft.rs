@@ -151,6 +151,6 @@ impl<T: Real> Basis<T> for RealFourier<T> {
     }
 
     fn coefficient_freq_hz(&self, k: usize, sample_rate_hz: f64) -> Option<f64> {
-        (k < self.len).then(|| ((k + 1) / 2) as f64 * sample_rate_hz / self.len as f64)
+        (k < self.len).then(|| k.div_ceil(2) as f64 * sample_rate_hz / self.len as f64)
     }
 }

@@ -69,7 +69,7 @@ fn fourier_vector(i: usize, j: usize, n: usize) -> f64 {
     if n % 2 == 0 && i == n - 1 {
         return if j % 2 == 0 { 1.0 } else { -1.0 } / nf.sqrt();
     }
-    let k = (i + 1) / 2;
+    let k = i.div_ceil(2);
     let theta = 2.0 * PI * ((k * j) % n) as f64 / nf;
     let pair = (2.0 / nf).sqrt();
     if i % 2 == 1 {
@@ -142,6 +142,9 @@ pub fn wavedec_periodized(x: &[f64], h: &[f64], levels: u8) -> Vec<f64> {
     out
 }
 
+/// A reference transform, signal to coefficients.
+type Transform = dyn Fn(&[f64]) -> Vec<f64>;
+
 /// A basis held as a dense `n x n` matrix of f64 (rows are the basis vectors, so `analyze`
 /// is `Psi^T x` = matrix times `x`). Memory is `8 n^2` bytes: for tests and small `n` only.
 pub struct DenseBasis {
@@ -174,7 +177,7 @@ impl DenseBasis {
                 why: "the length must be at least 1".into(),
             });
         }
-        let (kind, analysis): (BasisKind, Box<dyn Fn(&[f64]) -> Vec<f64>>) = match kind {
+        let (kind, analysis): (BasisKind, Box<Transform>) = match kind {
             BasisKind::Dct => (kind, Box::new(dct2)),
             BasisKind::Fourier => (kind, Box::new(fourier_analyze)),
             BasisKind::Daubechies { order, levels } => {

@@ -30,7 +30,11 @@ pub const MAX_ORDER: u8 = 10;
 /// Daubechies' Table 6.1 (I. Daubechies, SIAM 1992 monograph, CBMS-NSF Regional Conference
 /// Series in Applied Mathematics 61; extremal phase, `sum h = sqrt 2`).
 pub const DAUBECHIES_REC_LO: [&[f64]; 10] = [
-    &[0.7071067811865476, 0.7071067811865476],
+    // pywt gives 0.7071067811865476, which is exactly the f64 value of 1/sqrt(2).
+    &[
+        std::f64::consts::FRAC_1_SQRT_2,
+        std::f64::consts::FRAC_1_SQRT_2,
+    ],
     &[
         0.48296291314453416,
         0.8365163037378079,
