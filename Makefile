@@ -8,9 +8,14 @@ PY := .venv/bin/python
 
 .PHONY: demo test setup setup-python build lint rust-test python-test bench
 
+# The demo site's node 104 signs its frames; its key is in configs/demo-site.toml.
+DEMO_KEY := 104=6b6579206f662051462d31303420666f722064656d6f
+
 demo: setup
 	$(CARGO) build --release --locked
-	./target/release/csgate demo
+	mkdir -p demo-out
+	./target/release/csgate replay demo-data/demo-site.cslog --key $(DEMO_KEY) \
+	  --out demo-out/demo-site-$$(date -u +%Y%m%dT%H%M%SZ).h5
 
 test: setup-python lint rust-test python-test
 
