@@ -38,7 +38,7 @@
 //! let mut sim = Simulation::new(&scenario, 1.0, false);
 //! let w = sim.next_window().unwrap().unwrap();
 //! assert_eq!(w.packets[0].sample_count(), 256);
-//! assert_eq!(sim.remaining(), 13); // (8192 - 1024) / 512 + 1 = 15 windows in 1 s, 1 taken
+//! assert_eq!(sim.remaining(), 14); // (8192 - 1024) / 512 + 1 = 15 windows in 1 s, 1 taken
 //! ```
 
 pub mod machine;
