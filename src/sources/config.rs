@@ -45,6 +45,9 @@ pub struct IngestConfig {
     pub enrolled: BTreeMap<String, String>,
     /// Send an acknowledgement frame for every window accepted.
     pub send_acks: bool,
+    /// Record every accepted window frame, exactly as received, to this packet log (appended
+    /// if it exists), for later `csgate replay`. Default: none.
+    pub record_log: Option<std::path::PathBuf>,
 }
 
 impl Default for IngestConfig {
@@ -58,6 +61,7 @@ impl Default for IngestConfig {
             require_auth: false,
             enrolled: BTreeMap::new(),
             send_acks: true,
+            record_log: None,
         }
     }
 }

@@ -45,6 +45,9 @@ pub enum IngestError {
     /// `accept` kept failing after back-off.
     #[error("accept failed repeatedly: {0}")]
     Accept(std::io::Error),
+    /// The recording log could not be opened or written.
+    #[error("recording log: {0}")]
+    Recording(#[from] crate::packet::log::LogError),
 }
 
 /// Counters of the ingest (atomics; read with [`IngestStats::snapshot`]).
@@ -126,6 +129,35 @@ struct Shared {
     config: IngestConfig,
     keys: KeyRing,
     stats: Arc<IngestStats>,
+    /// Frames to record, with their receive time (microseconds since the epoch).
+    recorder: Option<mpsc::Sender<(i64, bytes::Bytes)>>,
+}
+
+/// Starts the recording thread: frames come in through a bounded channel (a slow disk slows
+/// the readers rather than growing memory) and are appended to the log in arrival order.
+fn start_recorder(
+    path: &std::path::Path,
+) -> Result<
+    (
+        mpsc::Sender<(i64, bytes::Bytes)>,
+        std::thread::JoinHandle<Result<(), crate::packet::log::LogError>>,
+    ),
+    IngestError,
+> {
+    let now_us = chrono::Utc::now().timestamp_micros();
+    let mut log =
+        crate::packet::log::LogWriter::open_append(path, now_us, "recorded by the csgate ingest")?;
+    let (tx, mut rx) = mpsc::channel::<(i64, bytes::Bytes)>(1024);
+    let handle = std::thread::Builder::new()
+        .name("csgate-record-log".into())
+        .spawn(move || {
+            while let Some((at, frame)) = rx.blocking_recv() {
+                log.append(at, &frame)?;
+            }
+            log.sync()
+        })
+        .map_err(IngestError::Accept)?;
+    Ok((tx, handle))
 }
 
 /// Runs the ingest on `listener` until `shutdown` completes, sending every accepted window to
@@ -138,11 +170,19 @@ pub async fn run(
     shutdown: impl Future<Output = ()>,
 ) -> Result<(), IngestError> {
     let keys = config.key_ring()?;
+    let (recorder, recorder_handle) = match &config.record_log {
+        Some(path) => {
+            let (tx, h) = start_recorder(path)?;
+            (Some(tx), Some(h))
+        }
+        None => (None, None),
+    };
     let limit = Arc::new(Semaphore::new(config.max_connections.max(1)));
     let shared = Arc::new(Shared {
         config,
         keys,
         stats,
+        recorder,
     });
     let cancel = CancellationToken::new();
     let mut tasks = JoinSet::new();
@@ -173,6 +213,16 @@ pub async fn run(
     cancel.cancel();
     drop(tx);
     while tasks.join_next().await.is_some() {}
+    drop(shared);
+    if let Some(h) = recorder_handle {
+        // Every connection task has ended, so every recorder sender is gone and the thread
+        // drains the channel, syncs and returns.
+        let done = tokio::task::spawn_blocking(move || h.join()).await;
+        if let Ok(Ok(Err(e))) = done {
+            tracing::error!(error = %e, "recording log failed");
+            return result.and(Err(IngestError::Recording(e)));
+        }
+    }
     result
 }
 
@@ -265,6 +315,12 @@ async fn connection(
         };
         // Back-pressure: while the pipeline is full this await holds the reader, the socket
         // buffer fills, and TCP flow control slows the node.
+        if let Some(rec) = &shared.recorder {
+            let at = chrono::Utc::now().timestamp_micros();
+            if rec.send((at, raw.clone().into_bytes())).await.is_err() {
+                tracing::error!("recording log stopped; frames are no longer recorded");
+            }
+        }
         if tx.send(packet).await.is_err() {
             tracing::debug!("pipeline closed, dropping connection");
             break;
