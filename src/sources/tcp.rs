@@ -133,17 +133,15 @@ struct Shared {
     recorder: Option<mpsc::Sender<(i64, bytes::Bytes)>>,
 }
 
+/// The recording thread's input and its join handle.
+type Recorder = (
+    mpsc::Sender<(i64, bytes::Bytes)>,
+    std::thread::JoinHandle<Result<(), crate::packet::log::LogError>>,
+);
+
 /// Starts the recording thread: frames come in through a bounded channel (a slow disk slows
 /// the readers rather than growing memory) and are appended to the log in arrival order.
-fn start_recorder(
-    path: &std::path::Path,
-) -> Result<
-    (
-        mpsc::Sender<(i64, bytes::Bytes)>,
-        std::thread::JoinHandle<Result<(), crate::packet::log::LogError>>,
-    ),
-    IngestError,
-> {
+fn start_recorder(path: &std::path::Path) -> Result<Recorder, IngestError> {
     let now_us = chrono::Utc::now().timestamp_micros();
     let mut log =
         crate::packet::log::LogWriter::open_append(path, now_us, "recorded by the csgate ingest")?;
