@@ -9,6 +9,9 @@ use crate::packet::{DecodeError, Frame, KeyRing, Limits, Packet};
 use std::path::PathBuf;
 use tokio::sync::mpsc;
 
+/// How many authentication failures of one log are logged one by one.
+const WARN_EACH: u64 = 3;
+
 /// What a replay met.
 #[derive(Debug, Clone, Default, PartialEq, Eq)]
 pub struct ReplaySummary {
@@ -52,7 +55,11 @@ pub fn replay_blocking(
     while let Some(record) = reader.next_record()? {
         if let Err(e) = keys.check(record.frame.as_bytes()) {
             summary.auth_failures += 1;
-            tracing::warn!(offset = record.offset, error = %e, "log record failed authentication");
+            // The first few are logged one by one; a log from an unknown node would otherwise
+            // print a line per frame. The total is in the summary.
+            if summary.auth_failures <= WARN_EACH {
+                tracing::warn!(offset = record.offset, error = %e, "log record failed authentication");
+            }
             continue;
         }
         match record.frame.parse(limits) {
@@ -73,6 +80,13 @@ pub fn replay_blocking(
                 tracing::warn!(offset = record.offset, error = %e, "log record is invalid");
             }
         }
+    }
+    if summary.auth_failures > WARN_EACH {
+        tracing::warn!(
+            path = %path.display(),
+            failed = summary.auth_failures,
+            "log records failed authentication in all (only the first {WARN_EACH} were logged)"
+        );
     }
     summary.log = reader.stats().clone();
     Ok(summary)
