@@ -30,13 +30,13 @@ pub enum ReplayError {
     #[error("{0} is not a file path")]
     BadOutput(PathBuf),
     /// A log could not be read.
-    #[error("cannot read packet log {path}: {source}")]
+    // The log error already names the file; printed once, not repeated as a source.
+    #[error("{error}")]
     Log {
         /// The log.
         path: PathBuf,
-        /// Why.
-        #[source]
-        source: crate::packet::log::LogError,
+        /// Why (it names the file).
+        error: crate::packet::log::LogError,
     },
     /// No valid window in any log.
     #[error("the packet logs hold no valid window")]
@@ -77,12 +77,12 @@ pub fn scan_logs(
     for path in logs {
         let mut reader = LogReader::open(path).map_err(|source| ReplayError::Log {
             path: path.clone(),
-            source,
+            error: source,
         })?;
         loop {
-            let record = reader.next_record().map_err(|source| ReplayError::Log {
+            let record = reader.next_record().map_err(|error| ReplayError::Log {
                 path: path.clone(),
-                source,
+                error,
             })?;
             let Some(record) = record else { break };
             if keys.check(record.frame.as_bytes()).is_err() {
@@ -254,7 +254,7 @@ pub fn replay(
                 report_logs.2 += u64::from(s.log.truncated.is_some());
                 report_logs.3 += s.auth_failures + s.decode_errors + s.validation_errors;
             }
-            Err((path, source)) => return Err(ReplayError::Log { path, source }),
+            Err((path, error)) => return Err(ReplayError::Log { path, error }),
         }
     }
     let wall_s = started.elapsed().as_secs_f64().max(1e-9);
