@@ -101,6 +101,7 @@ fn iteration_vs_floor<T: Real>(c: &mut Criterion, label: &str) {
         change_tol: 0.0,
         max_iter: ITERATIONS,
         restart: true,
+        subspace: false,
     };
     let mut s = vec![T::zero(); N];
     group.bench_function(format!("fista_x{ITERATIONS}"), |b| {

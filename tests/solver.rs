@@ -8,7 +8,7 @@ use csgate::solver::{
     duality_gap, estimate_operator_norm, fista, lasso_objective, next_momentum, soft_threshold,
     solve_with_operator, DenseOperator, EpsRule, FistaOptions, FistaWork, Form, IndexError,
     LambdaRule, LinearOperator, SampledBasis, SigmaRule, SolveError, SolveSettings, Solver,
-    StopReason, Workspace,
+    StopReason, WarmUse, Workspace,
 };
 use rand::rngs::StdRng;
 use rand::{Rng, SeedableRng};
@@ -171,6 +171,7 @@ fn first_fista_iterates_match_published_values() {
             change_tol: 0.0,
             max_iter: k + 1,
             restart: false,
+            subspace: false,
         };
         let mut x = [0.0; 6];
         let out = fista(&mut op, &TINY_Y, 1.0, &options, &mut x, &mut work);
@@ -699,4 +700,109 @@ fn solve_command_round_trip() {
     assert!((c[5].as_f64().unwrap() - 2.0).abs() < 1e-6);
     assert_eq!(out["report"]["stop"], "exact_residual");
     assert_eq!(out["signal"].as_array().unwrap().len(), n);
+}
+
+// ---------------------------------------------------------------------------------------------
+// Measurement (ignored): iterations and time per window by solver variant.
+
+/// Tones (on and off the DCT grid), a sideband family and white noise at 25.6 kHz: a stream
+/// to cut windows from. With `ramp > 0` every frequency rises linearly by that fraction over
+/// the stream (a machine running up), so no two windows hold the same spectrum.
+fn machine_stream(rng: &mut StdRng, len: usize, ramp: f64) -> Vec<f64> {
+    let tones = [
+        (29.3, 1.0, 0.3),
+        (58.6, 0.45, 1.1),
+        (791.1, 0.6, 0.0),
+        (761.8, 0.15, 0.4),
+        (820.4, 0.15, 2.5),
+        (3150.0, 0.08, 0.9),
+    ];
+    let noise = Normal::new(0.0, 0.01).unwrap();
+    let fs = 25_600.0;
+    let duration = len as f64 / fs;
+    (0..len)
+        .map(|j| {
+            let t = j as f64 / fs;
+            // Phase of a linear sweep f(t) = f0 (1 + ramp t / T): 2 pi f0 (t + ramp t^2 / 2T).
+            let warp = t + ramp * t * t / (2.0 * duration);
+            tones
+                .iter()
+                .map(|&(f, a, p): &(f64, f64, f64)| {
+                    a * (2.0 * std::f64::consts::PI * f * warp + p).cos()
+                })
+                .sum::<f64>()
+                + noise.sample(rng)
+        })
+        .collect()
+}
+
+fn study_variant<T: csgate::real::Real>(
+    sets: &[(Vec<u32>, Vec<f64>)],
+    n: usize,
+    settings: &SolveSettings,
+    warm: bool,
+) -> (f64, f64, f64, f64) {
+    let basis: SharedBasis<T> = BasisPlanner::new().plan(BasisKind::Dct, n).unwrap();
+    let mut solver = Solver::new(basis);
+    let mut prev: Option<Vec<T>> = None;
+    let (mut pairs, mut sub, mut gap_max) = (0usize, 0usize, 0f64);
+    let t0 = std::time::Instant::now();
+    for (idx, v) in sets {
+        let v: Vec<T> = v.iter().map(|&a| T::of(a)).collect();
+        let sol = solver
+            .solve(idx, &v, settings, if warm { prev.as_deref() } else { None })
+            .unwrap();
+        pairs += sol.report.iterations + sol.report.cg_steps;
+        sub += sol.report.subspace_steps;
+        gap_max = gap_max.max(sol.report.relative_gap);
+        prev = Some(sol.lasso_coefficients);
+    }
+    let w = sets.len() as f64;
+    let ms = t0.elapsed().as_secs_f64() * 1e3 / w;
+    (pairs as f64 / w, sub as f64 / w, ms, gap_max)
+}
+
+#[test]
+#[ignore = "measurement; run with --ignored --nocapture"]
+fn iteration_study() {
+    // Operator pairs (one A and one A^T: FISTA iterations, subspace and refit CG steps) and
+    // time per window, n = 4096, hop 2048, m/n = 0.25, LASSO at 0.01 lambda_max, stop at a
+    // 1e-4 relative duality gap; 24 windows of a stationary and of a running-up stream.
+    let (n, hop, m, windows) = (4096usize, 2048usize, 1024usize, 24usize);
+    println!("signal      | solver   | start        | prec | pairs/window | subspace | ms/window | worst gap");
+    for (signal, ramp) in [("stationary", 0.0), ("run-up 30%", 0.3)] {
+        let mut rng = StdRng::seed_from_u64(11);
+        let x = machine_stream(&mut rng, n + hop * windows, ramp);
+        let sets: Vec<(Vec<u32>, Vec<f64>)> = (0..windows)
+            .map(|w| {
+                let idx = random_indices(&mut rng, n, m);
+                let v = idx.iter().map(|&i| x[w * hop + i as usize]).collect();
+                (idx, v)
+            })
+            .collect();
+        for (solver, subspace) in [("plain", false), ("subspace", true)] {
+            for (start, warm, warm_use) in [
+                ("cold", false, WarmUse::Support),
+                ("coefficients", true, WarmUse::Coefficients),
+                ("support", true, WarmUse::Support),
+            ] {
+                let settings = SolveSettings {
+                    form: lasso(LambdaRule::FractionOfMax(0.01)),
+                    subspace,
+                    warm_use,
+                    ..SolveSettings::default()
+                };
+                for prec in ["f64", "f32"] {
+                    let (pairs, sub, ms, gap) = if prec == "f64" {
+                        study_variant::<f64>(&sets, n, &settings, warm)
+                    } else {
+                        study_variant::<f32>(&sets, n, &settings, warm)
+                    };
+                    println!(
+                        "{signal:<11} | {solver:<8} | {start:<12} | {prec} | {pairs:>12.1} | {sub:>8.1} | {ms:>9.2} | {gap:.1e}"
+                    );
+                }
+            }
+        }
+    }
 }

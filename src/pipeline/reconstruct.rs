@@ -84,6 +84,7 @@ pub fn linear_interpolate(indices: &[u32], values: &[f32], n: usize) -> Vec<f64>
 fn interpolation_report() -> SolveReport {
     SolveReport {
         iterations: 0,
+        subspace_steps: 0,
         fista_runs: 0,
         objective: f64::NAN,
         residual_norm: 0.0,

@@ -66,6 +66,10 @@ pub struct FistaOptions {
     pub max_iter: usize,
     /// Gradient-scheme adaptive restart (O'Donoghue & Candes 2015).
     pub restart: bool,
+    /// Subspace acceleration (see [`subspace_step`]): once the sign pattern of the iterate has
+    /// held for [`SUBSPACE_STABLE`] iterations, solve the LASSO restricted to that pattern by
+    /// conjugate gradients and keep the result if it lowers the objective.
+    pub subspace: bool,
 }
 
 impl Default for FistaOptions {
@@ -75,6 +79,7 @@ impl Default for FistaOptions {
             change_tol: 0.0,
             max_iter: 5000,
             restart: true,
+            subspace: true,
         }
     }
 }
@@ -95,6 +100,13 @@ pub struct FistaOutcome<T> {
     pub relative_gap: T,
     /// Number of momentum restarts.
     pub restarts: usize,
+    /// Conjugate-gradient steps of the subspace solves, included in `iterations` (each costs
+    /// one `A` and one `A^T`, as a FISTA iteration does).
+    pub subspace_steps: usize,
+    /// Subspace solves tried, and how many of them were kept.
+    pub subspace_tries: usize,
+    /// Subspace solves kept.
+    pub subspace_kept: usize,
     /// Why it stopped.
     pub stop: FistaStop,
 }
@@ -107,18 +119,24 @@ pub struct FistaWork<T: Real> {
     z: Vec<T>,
     z_prev: Vec<T>,
     r: Vec<T>,
+    sub: SubspaceWork<T>,
+}
+
+/// Buffers of the subspace solves.
+#[derive(Debug, Clone, Default)]
+struct SubspaceWork<T: Real> {
+    sign: Vec<T>,
+    u: Vec<T>,
+    p: Vec<T>,
+    corr: Vec<T>,
+    q: Vec<T>,
+    res: Vec<T>,
 }
 
 impl<T: Real> FistaWork<T> {
     /// Empty buffers; they are sized on first use.
     pub fn new() -> Self {
-        Self {
-            x_prev: Vec::new(),
-            grad: Vec::new(),
-            z: Vec::new(),
-            z_prev: Vec::new(),
-            r: Vec::new(),
-        }
+        Self::default()
     }
 
     fn size(&mut self, m: usize, n: usize) {
@@ -135,8 +153,136 @@ pub(crate) fn resize<T: Real>(v: &mut Vec<T>, len: usize) {
     v.resize(len, T::zero());
 }
 
+/// Iterations the sign pattern of the iterate must hold unchanged before a subspace solve is
+/// tried (the pattern of the current iterate counts as the first).
+pub const SUBSPACE_STABLE: usize = 3;
+
+/// Conjugate-gradient step cap of one subspace solve. On a right sign pattern CG certifies the
+/// solution in 4-6 steps (`iteration_study` below); a solve still running after 15 is on a
+/// pattern that is about to change, and FISTA is better placed to change it (15 against 40
+/// saved 3.7 operator pairs per window on that study).
+const SUBSPACE_CG_STEPS: usize = 15;
+
+/// Lanes of the chunked reductions: independent partial sums let the compiler vectorize what a
+/// single running sum would serialise on the add latency.
+const LANES: usize = 8;
+
+/// `sum (a_i - b_i)^2`, chunked (see [`LANES`]).
+#[inline]
+fn sq_dist<T: Real>(a: &[T], b: &[T]) -> T {
+    let mut acc = [T::zero(); LANES];
+    let (ca, cb) = (a.chunks_exact(LANES), b.chunks_exact(LANES));
+    let (ra, rb) = (ca.remainder(), cb.remainder());
+    for (x, y) in ca.zip(cb) {
+        for l in 0..LANES {
+            let d = x[l] - y[l];
+            acc[l] += d * d;
+        }
+    }
+    let mut tail = T::zero();
+    for (&x, &y) in ra.iter().zip(rb) {
+        tail += (x - y) * (x - y);
+    }
+    acc.iter().fold(tail, |s, &v| s + v)
+}
+
+/// `max |a_i|`, chunked (see [`LANES`]).
+#[inline]
+fn max_abs<T: Real>(a: &[T]) -> T {
+    let mut acc = [T::zero(); LANES];
+    let c = a.chunks_exact(LANES);
+    let r = c.remainder();
+    for x in c {
+        for l in 0..LANES {
+            acc[l] = acc[l].max(x[l].abs());
+        }
+    }
+    let tail = r.iter().fold(T::zero(), |s, &v| s.max(v.abs()));
+    acc.iter().fold(tail, |s, &v| s.max(v))
+}
+
+/// Per-iteration sums of the proximal step.
+#[derive(Clone, Copy)]
+struct ProxSums<T> {
+    l1: T,
+    change_sq: T,
+    norm_sq: T,
+    uphill: T,
+    nnz: usize,
+    /// Sign-pattern signature: `sum sign_i (i + 1)` and `sum |sign_i| (i + 1)^2` (wrapping).
+    sig: (i64, u64),
+}
+
+/// `x_k = S_{thresh}(y_k - step grad)` with `y_k = x + beta (x - x_prev)` formed on the fly and
+/// `x_{k-1}` moved into `x_prev`, in one chunked pass; the threshold is branch-free
+/// (`v - clamp(v, -t, t)`), which keeps the loop free of unpredictable branches.
+#[inline]
+fn prox_step<T: Real>(
+    x: &mut [T],
+    x_prev: &mut [T],
+    grad: &[T],
+    beta: T,
+    step: T,
+    thresh: T,
+) -> ProxSums<T> {
+    let mut l1 = [T::zero(); LANES];
+    let mut change = [T::zero(); LANES];
+    let mut norm = [T::zero(); LANES];
+    let mut uphill = [T::zero(); LANES];
+    let mut nnz = 0usize;
+    let (mut sig1, mut sig2) = (0i64, 0u64);
+    let n = x.len();
+    let body = n - n % LANES;
+    let mut one = |i: usize, lane: usize, xi: &mut T, xpi: &mut T, gi: T| {
+        let old = *xi;
+        let yk = old + beta * (old - *xpi);
+        let v = yk - step * gi;
+        let new = v - v.max(-thresh).min(thresh);
+        let d = new - old;
+        uphill[lane] += (yk - new) * d;
+        change[lane] += d * d;
+        norm[lane] += new * new;
+        l1[lane] += new.abs();
+        *xpi = old;
+        *xi = new;
+        let pos = (new > T::zero()) as i64;
+        let neg = (new < T::zero()) as i64;
+        let w = i as i64 + 1;
+        nnz += (pos + neg) as usize;
+        sig1 += (pos - neg) * w;
+        sig2 = sig2.wrapping_add(((pos + neg) * w * w) as u64);
+    };
+    for (c, ((xc, xpc), gc)) in x[..body]
+        .chunks_exact_mut(LANES)
+        .zip(x_prev[..body].chunks_exact_mut(LANES))
+        .zip(grad[..body].chunks_exact(LANES))
+        .enumerate()
+    {
+        for l in 0..LANES {
+            one(c * LANES + l, l, &mut xc[l], &mut xpc[l], gc[l]);
+        }
+    }
+    for i in body..n {
+        one(i, 0, &mut x[i], &mut x_prev[i], grad[i]);
+    }
+    let sum = |a: [T; LANES]| a.iter().fold(T::zero(), |s, &v| s + v);
+    ProxSums {
+        l1: sum(l1),
+        change_sq: sum(change),
+        norm_sq: sum(norm),
+        uphill: sum(uphill),
+        nnz,
+        sig: (sig1, sig2),
+    }
+}
+
 /// Minimizes `0.5 ||A x - y||^2 + lambda ||x||_1` by FISTA from the start `x` (zeros for a cold
 /// start, a previous solution for a warm start); `x` holds the result on return.
+///
+/// With [`FistaOptions::subspace`], FISTA identifies the sign pattern and a conjugate-gradient
+/// solve restricted to it finishes the job (see [`subspace_step`]); every candidate is judged
+/// by the objective and every stop by the duality gap, so the answer is the LASSO solution
+/// either way, usually in far fewer operator applications.
 ///
 /// # Panics
 /// If `x.len() != op.cols()` or `y.len() != op.rows()`.
@@ -158,12 +304,14 @@ pub fn fista<T: Real, O: LinearOperator<T> + ?Sized>(
         z,
         z_prev,
         r,
+        sub,
     } = work;
     let half = T::of(0.5);
     let step = T::one() / op.lipschitz();
     let thresh = lambda * step;
     let tiny = T::min_positive_value();
     let y_sq: T = y.iter().fold(T::zero(), |a, &v| a + v * v);
+    let gap_tol = T::of(options.gap_tol);
 
     if x.iter().any(|&v| v != T::zero()) {
         op.apply(x, z);
@@ -183,9 +331,15 @@ pub fn fista<T: Real, O: LinearOperator<T> + ?Sized>(
         gap: T::zero(),
         relative_gap: T::zero(),
         restarts: 0,
+        subspace_steps: 0,
+        subspace_tries: 0,
+        subspace_kept: 0,
         stop: FistaStop::IterationCap,
     };
-    for k in 1..=options.max_iter {
+    let (mut sig_prev, mut stable, mut tried) = ((0i64, 0u64), 0usize, None);
+    let mut k = 0;
+    while k < options.max_iter {
+        k += 1;
         // r = A y_k - y with A y_k formed from the stored z's (linearity).
         for ((ri, (&zi, &zpi)), &yi) in r.iter_mut().zip(z.iter().zip(z_prev.iter())).zip(y) {
             *ri = zi + beta * (zi - zpi) - yi;
@@ -193,7 +347,7 @@ pub fn fista<T: Real, O: LinearOperator<T> + ?Sized>(
         op.adjoint(r, grad);
         // Dual point nu = (y - A y_k) min(1, lambda / ||A^T (y - A y_k)||_inf) (CHECK-VALUES 6.5);
         // D(nu) = 0.5||y||^2 - 0.5||y - nu||^2 with y - nu = y + scale r.
-        let corr = grad.iter().fold(T::zero(), |a, &g| a.max(g.abs()));
+        let corr = max_abs(grad);
         let scale = if corr > lambda {
             lambda / corr
         } else {
@@ -205,37 +359,17 @@ pub fn fista<T: Real, O: LinearOperator<T> + ?Sized>(
         });
         let dual = half * (y_sq - dist_sq);
 
-        // x_k = S_{lambda/L}(y_k - grad/L), with y_k formed on the fly and x_{k-1} moved into
-        // x_prev in the same pass, so no buffer for y_k and no copies are needed.
-        let mut l1 = T::zero();
-        let mut change_sq = T::zero();
-        let mut norm_sq = T::zero();
-        let mut uphill = T::zero();
-        for ((xi, xpi), &gi) in x.iter_mut().zip(x_prev.iter_mut()).zip(grad.iter()) {
-            let old = *xi;
-            let yk = old + beta * (old - *xpi);
-            let new = soft_threshold(yk - step * gi, thresh);
-            let d = new - old;
-            uphill += (yk - new) * d;
-            change_sq += d * d;
-            norm_sq += new * new;
-            l1 += new.abs();
-            *xpi = old;
-            *xi = new;
-        }
+        let sums = prox_step(x, x_prev, grad, beta, step, thresh);
 
         std::mem::swap(z, z_prev);
         op.apply(x, z);
-        let res_sq = z
-            .iter()
-            .zip(y)
-            .fold(T::zero(), |a, (&zi, &yi)| a + (zi - yi) * (zi - yi));
-        let objective = half * res_sq + lambda * l1;
+        let res_sq = sq_dist(z, y);
+        let objective = half * res_sq + lambda * sums.l1;
         let gap = (objective - dual).max(T::zero());
         let relative_gap = gap / objective.max(tiny);
 
         let t_next = next_momentum(t);
-        if options.restart && uphill > T::zero() {
+        if options.restart && sums.uphill > T::zero() {
             restarts += 1;
             t = T::one();
             beta = T::zero();
@@ -244,27 +378,237 @@ pub fn fista<T: Real, O: LinearOperator<T> + ?Sized>(
             t = t_next;
         }
 
-        outcome = FistaOutcome {
-            iterations: k,
-            objective,
-            residual_norm: res_sq.sqrt(),
-            gap,
-            relative_gap,
-            restarts,
-            stop: FistaStop::IterationCap,
-        };
-        if relative_gap <= T::of(options.gap_tol) {
+        outcome.iterations = k;
+        outcome.objective = objective;
+        outcome.residual_norm = res_sq.sqrt();
+        outcome.gap = gap;
+        outcome.relative_gap = relative_gap;
+        outcome.restarts = restarts;
+        if relative_gap <= gap_tol {
             outcome.stop = FistaStop::DualityGap;
             break;
         }
         if options.change_tol > 0.0
-            && change_sq.sqrt() <= T::of(options.change_tol) * norm_sq.sqrt().max(tiny)
+            && sums.change_sq.sqrt() <= T::of(options.change_tol) * sums.norm_sq.sqrt().max(tiny)
         {
             outcome.stop = FistaStop::RelativeChange;
             break;
         }
+
+        stable = if sums.sig == sig_prev { stable + 1 } else { 1 };
+        sig_prev = sums.sig;
+        let worth = sums.nnz > 0 && sums.nnz < m;
+        if options.subspace && worth && stable >= SUBSPACE_STABLE && tried != Some(sums.sig) {
+            tried = Some(sums.sig);
+            let budget = (options.max_iter - k).min(SUBSPACE_CG_STEPS);
+            let sub_out = subspace_step(op, y, lambda, gap_tol, objective, x, z, budget, sub);
+            k += sub_out.steps;
+            outcome.iterations = k;
+            outcome.subspace_steps += sub_out.steps;
+            outcome.subspace_tries += 1;
+            if let Some(kept) = sub_out.kept {
+                outcome.subspace_kept += 1;
+                // x and z hold the kept point; restart the momentum from it.
+                x_prev.copy_from_slice(x);
+                z_prev.copy_from_slice(z);
+                t = T::one();
+                beta = T::zero();
+                outcome.objective = kept.objective;
+                outcome.residual_norm = kept.res_sq.sqrt();
+                if let Some(g) = kept.gap {
+                    outcome.gap = g;
+                    outcome.relative_gap = g / kept.objective.max(tiny);
+                    if outcome.relative_gap <= gap_tol {
+                        outcome.stop = FistaStop::DualityGap;
+                        break;
+                    }
+                }
+            }
+        }
     }
     outcome
+}
+
+/// A point a subspace solve kept.
+struct SubspaceKept<T> {
+    objective: T,
+    res_sq: T,
+    /// Duality gap at the point, when it was computed (always, unless the point was truncated
+    /// at a sign change).
+    gap: Option<T>,
+}
+
+struct SubspaceOutcome<T> {
+    steps: usize,
+    kept: Option<SubspaceKept<T>>,
+}
+
+/// The subspace step of an active-set method in the spirit of Z. Wen, W. Yin, D. Goldfarb &
+/// Y. Zhang, "A fast algorithm for sparse reconstruction based on shrinkage, subspace
+/// optimization, and continuation", SIAM J. Sci. Comput. 32(4), 2010: with the support `S` and
+/// signs `sigma` of the FISTA iterate `x`, the LASSO restricted to that sign pattern is the
+/// quadratic `0.5||A_S u - y||^2 + lambda sigma^T u`, minimised by conjugate gradients on
+/// `A_S^T A_S u = A_S^T y - lambda sigma` from `u = x_S` (CG on the normal equations, each
+/// step one `A` and one `A^T`). `A_S` is well conditioned when `|S|` is well below `m` (the
+/// regime where L1 recovery works at all), so CG converges in a handful of steps where FISTA,
+/// whose step `1/L` is set by the whole operator, would need dozens.
+///
+/// Every CG step has the full correlation `A^T (y - A u)` at hand, so the duality gap of `u`
+/// (a valid bound for any primal point) is checked each step and the solve returns as soon as
+/// it certifies `u`. Otherwise `u` is kept only if it keeps the signs and lowers the objective;
+/// if signs flipped, the point where the first one reaches zero is tried instead. On return `x`
+/// and `z = A x` hold the kept point (or are unchanged).
+#[allow(clippy::too_many_arguments)]
+fn subspace_step<T: Real, O: LinearOperator<T> + ?Sized>(
+    op: &mut O,
+    y: &[T],
+    lambda: T,
+    gap_tol: T,
+    objective_x: T,
+    x: &mut [T],
+    z: &mut [T],
+    max_steps: usize,
+    w: &mut SubspaceWork<T>,
+) -> SubspaceOutcome<T> {
+    let (m, n) = (op.rows(), op.cols());
+    let half = T::of(0.5);
+    let tiny = T::min_positive_value();
+    let y_sq = y.iter().fold(T::zero(), |a, &v| a + v * v);
+    resize(&mut w.sign, n);
+    resize(&mut w.p, n);
+    resize(&mut w.corr, n);
+    resize(&mut w.q, m);
+    resize(&mut w.res, m);
+    w.u.clear();
+    w.u.extend_from_slice(x);
+    for (sg, &xi) in w.sign.iter_mut().zip(x.iter()) {
+        *sg = if xi > T::zero() {
+            T::one()
+        } else if xi < T::zero() {
+            -T::one()
+        } else {
+            T::zero()
+        };
+    }
+    for ((r, &yi), &zi) in w.res.iter_mut().zip(y).zip(z.iter()) {
+        *r = yi - zi;
+    }
+    // g = mask(A^T res) - lambda sigma; returns (|g|^2, gap at u) with the gap from the full
+    // correlation (CHECK-VALUES 6.5).
+    let grad_and_gap = |op: &mut O, w: &mut SubspaceWork<T>| -> (T, T, T) {
+        op.adjoint(&w.res, &mut w.corr);
+        let corr_max = max_abs(&w.corr);
+        let mut g2 = T::zero();
+        let mut l1 = T::zero();
+        for ((c, &sg), &ui) in w.corr.iter_mut().zip(&w.sign).zip(&w.u) {
+            l1 += ui.abs();
+            if sg != T::zero() {
+                *c -= lambda * sg;
+                g2 += *c * *c;
+            } else {
+                *c = T::zero();
+            }
+        }
+        let scale = if corr_max > lambda {
+            lambda / corr_max
+        } else {
+            T::one()
+        };
+        let res_sq = w.res.iter().fold(T::zero(), |a, &v| a + v * v);
+        // y - nu with nu = scale * res.
+        let dist_sq = w.res.iter().zip(y).fold(T::zero(), |a, (&ri, &yi)| {
+            let d = yi - scale * ri;
+            a + d * d
+        });
+        let objective = half * res_sq + lambda * l1;
+        let gap = (objective - half * (y_sq - dist_sq)).max(T::zero());
+        (g2, gap, objective)
+    };
+    let (mut gamma, _, _) = grad_and_gap(op, w);
+    w.p.copy_from_slice(&w.corr);
+    let mut steps = 0;
+    let mut last: Option<(T, T)> = None; // (objective, gap) at u
+    while steps < max_steps && gamma > T::zero() {
+        op.apply(&w.p, &mut w.q);
+        let q2 = w.q.iter().fold(T::zero(), |a, &v| a + v * v);
+        steps += 1;
+        if q2 <= T::zero() {
+            break;
+        }
+        let alpha = gamma / q2;
+        for (u, &p) in w.u.iter_mut().zip(&w.p) {
+            *u += alpha * p;
+        }
+        for (r, &q) in w.res.iter_mut().zip(&w.q) {
+            *r -= alpha * q;
+        }
+        let (next, gap, objective) = grad_and_gap(op, w);
+        last = Some((objective, gap));
+        if gap <= gap_tol * objective.max(tiny) {
+            break;
+        }
+        let ratio = next / gamma;
+        for (p, &g) in w.p.iter_mut().zip(&w.corr) {
+            *p = g + ratio * *p;
+        }
+        gamma = next;
+    }
+    let Some((objective_u, gap_u)) = last else {
+        return SubspaceOutcome { steps, kept: None };
+    };
+    let res_sq_u = w.res.iter().fold(T::zero(), |a, &v| a + v * v);
+    let certified = gap_u <= gap_tol * objective_u.max(tiny);
+    // First sign change along x -> u: the largest t in (0, 1] keeping every sign.
+    let mut t_max = T::one();
+    for ((&xi, &ui), &sg) in x.iter().zip(&w.u).zip(&w.sign) {
+        if sg != T::zero() && ui * sg < T::zero() {
+            t_max = t_max.min(xi / (xi - ui));
+        }
+    }
+    if certified || (t_max >= T::one() && objective_u < objective_x) {
+        x.copy_from_slice(&w.u);
+        for ((zi, &yi), &ri) in z.iter_mut().zip(y).zip(&w.res) {
+            *zi = yi - ri;
+        }
+        return SubspaceOutcome {
+            steps,
+            kept: Some(SubspaceKept {
+                objective: objective_u,
+                res_sq: res_sq_u,
+                gap: Some(gap_u),
+            }),
+        };
+    }
+    if t_max <= T::zero() || t_max >= T::one() {
+        return SubspaceOutcome { steps, kept: None };
+    }
+    // Truncated point v = x + t (u - x), entries that reach zero set to zero; A v by linearity
+    // from z = A x and A u = y - res (an entry forced to exactly zero was within rounding).
+    let mut l1 = T::zero();
+    for ((vi, &xi), (&ui, &sg)) in w.p.iter_mut().zip(x.iter()).zip(w.u.iter().zip(&w.sign)) {
+        let v = xi + t_max * (ui - xi);
+        *vi = if v * sg <= T::zero() { T::zero() } else { v };
+        l1 += vi.abs();
+    }
+    let mut res_sq = T::zero();
+    for ((q, &zi), (&yi, &ri)) in w.q.iter_mut().zip(z.iter()).zip(y.iter().zip(&w.res)) {
+        *q = zi + t_max * ((yi - ri) - zi);
+        res_sq += (*q - yi) * (*q - yi);
+    }
+    let objective_v = half * res_sq + lambda * l1;
+    if objective_v < objective_x {
+        x.copy_from_slice(&w.p);
+        z.copy_from_slice(&w.q);
+        return SubspaceOutcome {
+            steps,
+            kept: Some(SubspaceKept {
+                objective: objective_v,
+                res_sq,
+                gap: None,
+            }),
+        };
+    }
+    SubspaceOutcome { steps, kept: None }
 }
 
 /// The duality gap of the LASSO at `s` (CHECK-VALUES 6.5): `r = y - A s`,
