@@ -770,3 +770,37 @@ fn coherence_with_time_samples() {
         assert!((got - want).abs() < 0.005, "db{order}: {got}");
     }
 }
+
+#[test]
+fn sampled_dct_paths_equal_full_transforms() {
+    // Property (common practice): the DCT's fused sampled synthesis and scattered analysis are
+    // the full transforms followed by a gather / preceded by a scatter, for even and odd n.
+    use csgate::basis::{Basis, BasisScratch};
+    for n in [7usize, 8, 64, 1000, 4096] {
+        let basis = csgate::basis::BasisPlanner::<f64>::new()
+            .plan(BasisKind::Dct, n)
+            .unwrap();
+        let coeffs: Vec<f64> = (0..n).map(|k| ((k * 37 % 11) as f64 - 5.0) / 3.0).collect();
+        let idx: Vec<usize> = (0..n).filter(|i| i % 3 != 1).collect();
+        let mut scratch = BasisScratch::new();
+        let mut full = coeffs.clone();
+        basis.synthesize(&mut full, &mut scratch);
+        let mut out = vec![0.0; idx.len()];
+        let mut grid = vec![0.0; n];
+        basis.synthesize_at(&coeffs, &idx, &mut out, &mut grid, &mut scratch);
+        for (o, &i) in out.iter().zip(&idx) {
+            assert!((o - full[i]).abs() < 1e-12, "n {n} synthesis at {i}");
+        }
+        let values: Vec<f64> = idx.iter().map(|&i| (i as f64 * 0.1).sin()).collect();
+        let mut dense = vec![0.0; n];
+        for (&v, &i) in values.iter().zip(&idx) {
+            dense[i] = v;
+        }
+        basis.analyze(&mut dense, &mut scratch);
+        let mut fused = vec![1.0; n];
+        basis.analyze_from(&idx, &values, &mut fused, &mut scratch);
+        for k in 0..n {
+            assert!((fused[k] - dense[k]).abs() < 1e-12, "n {n} analysis at {k}");
+        }
+    }
+}

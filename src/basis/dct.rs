@@ -142,6 +142,58 @@ impl<T: Real> Basis<T> for Dct<T> {
         }
     }
 
+    fn synthesize_at(
+        &self,
+        coeffs: &[T],
+        indices: &[usize],
+        out: &mut [T],
+        _grid: &mut [T],
+        scratch: &mut BasisScratch<T>,
+    ) {
+        let n = self.len;
+        if coeffs.len() != n {
+            length_mismatch(n, coeffs.len());
+        }
+        let (_, work) = scratch.take(0, n + self.fft_scratch_len);
+        let (v, fft_scratch) = work.split_at_mut(n);
+        // As `synthesize`, reading the coefficients in place and the FFT output only at the
+        // sampled instants: grid index 2j is v[j], 2j + 1 is v[n - 1 - j].
+        v[0] = Complex::new(coeffs[0] * self.twiddle_synthesis[0].re, T::zero());
+        for k in 1..n {
+            v[k] = Complex::new(coeffs[k], coeffs[n - k]) * self.twiddle_synthesis[k];
+        }
+        self.fft.process_with_scratch(v, fft_scratch);
+        for (o, &i) in out.iter_mut().zip(indices) {
+            let j = i >> 1;
+            *o = v[if i & 1 == 0 { j } else { n - 1 - j }].re;
+        }
+    }
+
+    fn analyze_from(
+        &self,
+        indices: &[usize],
+        values: &[T],
+        out: &mut [T],
+        scratch: &mut BasisScratch<T>,
+    ) {
+        let n = self.len;
+        if out.len() != n {
+            length_mismatch(n, out.len());
+        }
+        let (_, work) = scratch.take(0, n + self.fft_scratch_len);
+        let (v, fft_scratch) = work.split_at_mut(n);
+        // As `analyze`, scattering the samples straight into Makhoul's reordered buffer.
+        v.fill(Complex::new(T::zero(), T::zero()));
+        for (&x, &i) in values.iter().zip(indices) {
+            let j = i >> 1;
+            v[if i & 1 == 0 { j } else { n - 1 - j }] = Complex::new(x, T::zero());
+        }
+        self.fft.process_with_scratch(v, fft_scratch);
+        for ((o, z), w) in out.iter_mut().zip(v.iter()).zip(&self.twiddle_analysis) {
+            *o = z.re * w.re - z.im * w.im;
+        }
+    }
+
     fn analyze(&self, buf: &mut [T], scratch: &mut BasisScratch<T>) {
         let n = self.len;
         if buf.len() != n {

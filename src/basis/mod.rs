@@ -172,6 +172,40 @@ pub trait Basis<T: Real>: Send + Sync + fmt::Debug {
     /// # Panics
     /// If `buf.len() != self.len()`.
     fn analyze(&self, buf: &mut [T], scratch: &mut BasisScratch<T>);
+
+    /// `out[i] = (Psi coeffs)[indices[i]]`: synthesis read at the sampled instants only, the
+    /// forward operator of sparse recovery. `grid` (length n) is scratch. The default
+    /// synthesizes the whole grid and gathers; a basis may skip the full-grid write.
+    fn synthesize_at(
+        &self,
+        coeffs: &[T],
+        indices: &[usize],
+        out: &mut [T],
+        grid: &mut [T],
+        scratch: &mut BasisScratch<T>,
+    ) {
+        grid.copy_from_slice(coeffs);
+        self.synthesize(grid, scratch);
+        for (o, &i) in out.iter_mut().zip(indices) {
+            *o = grid[i];
+        }
+    }
+
+    /// `out = Psi^T x` where `x` is zero except `x[indices[i]] = values[i]`: the adjoint of
+    /// [`Basis::synthesize_at`]. The default scatters into `out` and analyzes it.
+    fn analyze_from(
+        &self,
+        indices: &[usize],
+        values: &[T],
+        out: &mut [T],
+        scratch: &mut BasisScratch<T>,
+    ) {
+        out.fill(T::zero());
+        for (&v, &i) in values.iter().zip(indices) {
+            out[i] = v;
+        }
+        self.analyze(out, scratch);
+    }
     /// The frequency in Hz that coefficient `k` represents at the given sample rate, where that
     /// has a meaning (DCT, Fourier); for wavelets the centre of the coefficient's octave band.
     fn coefficient_freq_hz(&self, k: usize, sample_rate_hz: f64) -> Option<f64>;

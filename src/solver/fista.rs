@@ -186,6 +186,28 @@ fn sq_dist<T: Real>(a: &[T], b: &[T]) -> T {
     acc.iter().fold(tail, |s, &v| s + v)
 }
 
+/// `(sum a_i b_i, sum b_i^2)`, chunked (see [`LANES`]).
+#[inline]
+fn dot_and_sq<T: Real>(a: &[T], b: &[T]) -> (T, T) {
+    let mut ab = [T::zero(); LANES];
+    let mut bb = [T::zero(); LANES];
+    let (ca, cb) = (a.chunks_exact(LANES), b.chunks_exact(LANES));
+    let (ra, rb) = (ca.remainder(), cb.remainder());
+    for (x, y) in ca.zip(cb) {
+        for l in 0..LANES {
+            ab[l] += x[l] * y[l];
+            bb[l] += y[l] * y[l];
+        }
+    }
+    let (mut tab, mut tbb) = (T::zero(), T::zero());
+    for (&x, &y) in ra.iter().zip(rb) {
+        tab += x * y;
+        tbb += y * y;
+    }
+    let sum = |acc: [T; LANES], t: T| acc.iter().fold(t, |s, &v| s + v);
+    (sum(ab, tab), sum(bb, tbb))
+}
+
 /// `max |a_i|`, chunked (see [`LANES`]).
 #[inline]
 fn max_abs<T: Real>(a: &[T]) -> T {
@@ -208,14 +230,15 @@ struct ProxSums<T> {
     change_sq: T,
     norm_sq: T,
     uphill: T,
+    /// Non-zero entries of `x_k`.
     nnz: usize,
-    /// Sign-pattern signature: `sum sign_i (i + 1)` and `sum |sign_i| (i + 1)^2` (wrapping).
-    sig: (i64, u64),
+    /// Entries whose sign (-, 0, +) differs between `x_k` and `x_{k-1}`.
+    flips: usize,
 }
 
 /// `x_k = S_{thresh}(y_k - step grad)` with `y_k = x + beta (x - x_prev)` formed on the fly and
-/// `x_{k-1}` moved into `x_prev`, in one chunked pass; the threshold is branch-free
-/// (`v - clamp(v, -t, t)`), which keeps the loop free of unpredictable branches.
+/// `x_{k-1}` moved into `x_prev`, in one chunked pass. The threshold is branch-free
+/// (`v - clamp(v, -t, t)`) and the counters are 32-bit lanes, so the loop vectorizes.
 #[inline]
 fn prox_step<T: Real>(
     x: &mut [T],
@@ -229,50 +252,69 @@ fn prox_step<T: Real>(
     let mut change = [T::zero(); LANES];
     let mut norm = [T::zero(); LANES];
     let mut uphill = [T::zero(); LANES];
-    let mut nnz = 0usize;
-    let (mut sig1, mut sig2) = (0i64, 0u64);
-    let n = x.len();
-    let body = n - n % LANES;
-    let mut one = |i: usize, lane: usize, xi: &mut T, xpi: &mut T, gi: T| {
+    let mut nnz = [T::zero(); LANES];
+    let mut flips = [T::zero(); LANES];
+    let (zero, one) = (T::zero(), T::one());
+    let mut xc = x.chunks_exact_mut(LANES);
+    let mut xpc = x_prev.chunks_exact_mut(LANES);
+    let mut gc = grad.chunks_exact(LANES);
+    for ((xs, xps), gs) in (&mut xc).zip(&mut xpc).zip(&mut gc) {
+        let mut new = [zero; LANES];
+        let mut old = [zero; LANES];
+        let mut yk = [zero; LANES];
+        for l in 0..LANES {
+            old[l] = xs[l];
+            yk[l] = old[l] + beta * (old[l] - xps[l]);
+            let v = yk[l] - step * gs[l];
+            new[l] = v - v.max(-thresh).min(thresh);
+        }
+        for l in 0..LANES {
+            let d = new[l] - old[l];
+            uphill[l] += (yk[l] - new[l]) * d;
+            change[l] += d * d;
+            norm[l] += new[l] * new[l];
+            l1[l] += new[l].abs();
+            let nz = if new[l] != zero { one } else { zero };
+            nnz[l] += nz;
+            // Sign of new and old as -1, 0, +1; a flip is any difference.
+            let sn =
+                if new[l] > zero { one } else { zero } - if new[l] < zero { one } else { zero };
+            let so =
+                if old[l] > zero { one } else { zero } - if old[l] < zero { one } else { zero };
+            flips[l] += if sn != so { one } else { zero };
+            xps[l] = old[l];
+            xs[l] = new[l];
+        }
+    }
+    let (xr, xpr, gr) = (xc.into_remainder(), xpc.into_remainder(), gc.remainder());
+    for ((xi, xpi), &gi) in xr.iter_mut().zip(xpr.iter_mut()).zip(gr) {
         let old = *xi;
         let yk = old + beta * (old - *xpi);
         let v = yk - step * gi;
         let new = v - v.max(-thresh).min(thresh);
         let d = new - old;
-        uphill[lane] += (yk - new) * d;
-        change[lane] += d * d;
-        norm[lane] += new * new;
-        l1[lane] += new.abs();
+        uphill[0] += (yk - new) * d;
+        change[0] += d * d;
+        norm[0] += new * new;
+        l1[0] += new.abs();
+        if new != zero {
+            nnz[0] += one;
+        }
+        if (new > zero) != (old > zero) || (new < zero) != (old < zero) {
+            flips[0] += one;
+        }
         *xpi = old;
         *xi = new;
-        let pos = (new > T::zero()) as i64;
-        let neg = (new < T::zero()) as i64;
-        let w = i as i64 + 1;
-        nnz += (pos + neg) as usize;
-        sig1 += (pos - neg) * w;
-        sig2 = sig2.wrapping_add(((pos + neg) * w * w) as u64);
-    };
-    for (c, ((xc, xpc), gc)) in x[..body]
-        .chunks_exact_mut(LANES)
-        .zip(x_prev[..body].chunks_exact_mut(LANES))
-        .zip(grad[..body].chunks_exact(LANES))
-        .enumerate()
-    {
-        for l in 0..LANES {
-            one(c * LANES + l, l, &mut xc[l], &mut xpc[l], gc[l]);
-        }
-    }
-    for i in body..n {
-        one(i, 0, &mut x[i], &mut x_prev[i], grad[i]);
     }
     let sum = |a: [T; LANES]| a.iter().fold(T::zero(), |s, &v| s + v);
+    let count = |a: [T; LANES]| sum(a).to_f64_() as usize;
     ProxSums {
         l1: sum(l1),
         change_sq: sum(change),
         norm_sq: sum(norm),
         uphill: sum(uphill),
-        nnz,
-        sig: (sig1, sig2),
+        nnz: count(nnz),
+        flips: count(flips),
     }
 }
 
@@ -336,7 +378,9 @@ pub fn fista<T: Real, O: LinearOperator<T> + ?Sized>(
         subspace_kept: 0,
         stop: FistaStop::IterationCap,
     };
-    let (mut sig_prev, mut stable, mut tried) = ((0i64, 0u64), 0usize, None);
+    // Iterations the sign pattern has held, and whether a subspace solve was already tried on
+    // the current pattern (it is tried again only after the pattern changed).
+    let (mut stable, mut tried) = (0usize, false);
     let mut k = 0;
     while k < options.max_iter {
         k += 1;
@@ -353,10 +397,9 @@ pub fn fista<T: Real, O: LinearOperator<T> + ?Sized>(
         } else {
             T::one()
         };
-        let dist_sq = r.iter().zip(y).fold(T::zero(), |a, (&ri, &yi)| {
-            let d = yi + scale * ri;
-            a + d * d
-        });
+        // ||y + scale r||^2 = ||y||^2 + 2 scale <y, r> + scale^2 ||r||^2, from chunked sums.
+        let (yr, rr) = dot_and_sq(y, r);
+        let dist_sq = y_sq + T::of(2.0) * scale * yr + scale * scale * rr;
         let dual = half * (y_sq - dist_sq);
 
         let sums = prox_step(x, x_prev, grad, beta, step, thresh);
@@ -395,11 +438,15 @@ pub fn fista<T: Real, O: LinearOperator<T> + ?Sized>(
             break;
         }
 
-        stable = if sums.sig == sig_prev { stable + 1 } else { 1 };
-        sig_prev = sums.sig;
+        if sums.flips == 0 {
+            stable += 1;
+        } else {
+            stable = 1;
+            tried = false;
+        }
         let worth = sums.nnz > 0 && sums.nnz < m;
-        if options.subspace && worth && stable >= SUBSPACE_STABLE && tried != Some(sums.sig) {
-            tried = Some(sums.sig);
+        if options.subspace && worth && stable >= SUBSPACE_STABLE && !tried {
+            tried = true;
             let budget = (options.max_iter - k).min(SUBSPACE_CG_STEPS);
             let sub_out = subspace_step(op, y, lambda, gap_tol, objective, x, z, budget, sub);
             k += sub_out.steps;

@@ -175,19 +175,13 @@ impl<T: Real> LinearOperator<T> for SampledBasis<T> {
     }
     fn apply(&mut self, x: &[T], out: &mut [T]) {
         assert_eq!(out.len(), self.indices.len(), "apply: output length");
-        self.grid.copy_from_slice(x);
-        self.basis.synthesize(&mut self.grid, &mut self.scratch);
-        for (o, &i) in out.iter_mut().zip(&self.indices) {
-            *o = self.grid[i];
-        }
+        self.basis
+            .synthesize_at(x, &self.indices, out, &mut self.grid, &mut self.scratch);
     }
     fn adjoint(&mut self, y: &[T], out: &mut [T]) {
         assert_eq!(y.len(), self.indices.len(), "adjoint: input length");
-        out.fill(T::zero());
-        for (&v, &i) in y.iter().zip(&self.indices) {
-            out[i] = v;
-        }
-        self.basis.analyze(out, &mut self.scratch);
+        self.basis
+            .analyze_from(&self.indices, y, out, &mut self.scratch);
     }
     fn lipschitz(&self) -> T {
         T::one()
