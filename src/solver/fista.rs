@@ -282,9 +282,9 @@ fn prox_step<T: Real>(
             let so =
                 if old[l] > zero { one } else { zero } - if old[l] < zero { one } else { zero };
             flips[l] += if sn != so { one } else { zero };
-            xps[l] = old[l];
-            xs[l] = new[l];
         }
+        xps.copy_from_slice(&old);
+        xs.copy_from_slice(&new);
     }
     let (xr, xpr, gr) = (xc.into_remainder(), xpc.into_remainder(), gc.remainder());
     for ((xi, xpi), &gi) in xr.iter_mut().zip(xpr.iter_mut()).zip(gr) {
