@@ -775,7 +775,7 @@ fn coherence_with_time_samples() {
 fn sampled_dct_paths_equal_full_transforms() {
     // Property (common practice): the DCT's fused sampled synthesis and scattered analysis are
     // the full transforms followed by a gather / preceded by a scatter, for even and odd n.
-    use csgate::basis::{Basis, BasisScratch};
+    use csgate::basis::BasisScratch;
     for n in [7usize, 8, 64, 1000, 4096] {
         let basis = csgate::basis::BasisPlanner::<f64>::new()
             .plan(BasisKind::Dct, n)
