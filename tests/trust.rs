@@ -152,7 +152,11 @@ fn unrecoverable_windows_are_low_trust() {
                 s[i] = gauss.sample(&mut rng);
             }
             basis.synthesize(&mut s, &mut scratch);
-            let (_, t) = reconstruct(&mut worker, packet(trial * 2 + (k as u64), n, m, &s), &trust);
+            let (_, t) = reconstruct(
+                &mut worker,
+                packet(trial * 2 + (k as u64), n, m, &s),
+                &trust,
+            );
             if k == 10 && !t.low() {
                 good_ok += 1;
             }
@@ -161,6 +165,12 @@ fn unrecoverable_windows_are_low_trust() {
             }
         }
     }
-    assert!(good_ok >= trials * 19 / 20, "recoverable trusted: {good_ok}/{trials}");
-    assert!(bad_low >= trials * 19 / 20, "unrecoverable flagged: {bad_low}/{trials}");
+    assert!(
+        good_ok >= trials * 19 / 20,
+        "recoverable trusted: {good_ok}/{trials}"
+    );
+    assert!(
+        bad_low >= trials * 19 / 20,
+        "unrecoverable flagged: {bad_low}/{trials}"
+    );
 }
