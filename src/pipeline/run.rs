@@ -422,7 +422,7 @@ pub fn run_with(
         }
         let accepting = sources_open && d.queued < config.max_queued_windows;
         enum Ev {
-            Done(ReconstructedWindow),
+            Done(Box<ReconstructedWindow>),
             Packet(Packet),
             SourcesClosed,
             Idle,
@@ -430,7 +430,7 @@ pub fn run_with(
         let ev = futures::executor::block_on(async {
             tokio::select! {
                 biased;
-                Some(r) = done_rx.recv(), if d.in_flight > 0 => Ev::Done(r),
+                Some(r) = done_rx.recv(), if d.in_flight > 0 => Ev::Done(Box::new(r)),
                 p = packets.recv(), if accepting => match p {
                     Some(p) => Ev::Packet(p),
                     None => Ev::SourcesClosed,
@@ -439,7 +439,7 @@ pub fn run_with(
             }
         });
         match ev {
-            Ev::Done(r) => d.on_done(r)?,
+            Ev::Done(r) => d.on_done(*r)?,
             Ev::Packet(p) => {
                 stats.packets.fetch_add(1, Ordering::Relaxed);
                 let events: Vec<ReorderEvent> = d.reorder.push(p).collect();
