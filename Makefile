@@ -14,8 +14,10 @@ DEMO_KEY := 104=6b6579206f662051462d31303420666f722064656d6f
 demo: setup
 	$(CARGO) build --release --locked
 	mkdir -p demo-out
+	STAMP=$$(date -u +%Y%m%dT%H%M%SZ); \
 	./target/release/csgate replay demo-data/demo-site.cslog --key $(DEMO_KEY) \
-	  --out demo-out/demo-site-$$(date -u +%Y%m%dT%H%M%SZ).h5
+	  --machines configs/demo-site.toml \
+	  --out demo-out/demo-site-$$STAMP.h5 --events demo-out/demo-site-$$STAMP.jsonl
 
 test: setup-python lint rust-test python-test
 

@@ -177,6 +177,7 @@ fn lambda_rules() {
             keys: csgate::packet::KeyRing::new(false),
             deflate: None,
             config_digest: String::new(),
+            events: None,
         };
         let rep = replay(&opts, |_, _| {}).unwrap();
         let rec = RecordReader::open(&out).unwrap();

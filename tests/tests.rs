@@ -1,5 +1,6 @@
 //! Integration tests: one binary, one module per area.
 
+mod analytics;
 mod basis;
 mod features;
 mod pipeline;
@@ -7,5 +8,6 @@ mod sim;
 mod solver;
 mod store;
 mod tcp_ingest;
+mod trust;
 mod util;
 mod wire;

@@ -4,10 +4,12 @@ use anyhow::Context;
 use clap::Args;
 use csgate::basis::BasisKind;
 use csgate::packet::{KeyRing, Limits, NodeKey};
+use csgate::pipeline::analytics::MachineEntry;
 use csgate::pipeline::reconstruct::Method;
 use csgate::pipeline::reconstruct::WarmStart;
 use csgate::pipeline::replay::{replay, ReplayOptions};
 use csgate::pipeline::run::PipelineConfig;
+use csgate::sim::scenario::Scenario;
 use indicatif::{ProgressBar, ProgressStyle};
 use std::path::PathBuf;
 use std::process::ExitCode;
@@ -18,10 +20,12 @@ use std::process::ExitCode;
     about = "Reconstruct recorded packet logs into one continuous HDF5 record",
     long_about = "Reads one or more packet logs (as written by `csgate simulate --out` or by the \
 gateway's recording option), reconstructs every window of every stream with the same pipeline \
-as the live gateway (reorder, sparse recovery on all cores, overlap-add stitching), and writes \
-ONE new HDF5 record holding every stream (layout: docs/hdf5-layout.md). Prints a summary: \
-streams, windows, gaps, residuals, throughput and real-time factor. An existing output file is \
-never overwritten."
+as the live gateway (reorder, sparse recovery on all cores, overlap-add stitching, trust figures \
+per window, features per block), and writes ONE new HDF5 record holding every stream (layout: \
+docs/hdf5-layout.md). Prints a summary: streams, windows, gaps, residuals, trust, features, \
+throughput and real-time factor. An existing output file is never overwritten. Severity zones \
+and fault labels are indicative only: they do not replace a qualified analyst, the machine \
+maker's limits, or local codes."
 )]
 pub struct ReplayArgs {
     /// Packet log files, replayed in the order given.
@@ -53,6 +57,25 @@ pub struct ReplayArgs {
     /// received samples, the baseline to compare with; never used for real records).
     #[arg(long, default_value = "sparse")]
     pub method: Method,
+    /// Machine kinematics of the nodes (shaft speed, bearing geometry, gear teeth), so that
+    /// peaks get labels (1X, BPFO, GMF+1 ...): a simulator scenario file (its `[[node]]`
+    /// machines are used, e.g. configs/demo-site.toml) or a TOML file of
+    /// `[[machines]]` entries as in the pipeline configuration (docs/events.md).
+    #[arg(long, value_name = "FILE.toml")]
+    pub machines: Option<PathBuf>,
+    /// Also write one JSON object per analysed block per stream to this new file
+    /// (format: docs/events.md). Must not exist.
+    #[arg(long, value_name = "FILE.jsonl")]
+    pub events: Option<PathBuf>,
+    /// Block length of the feature analysis in seconds (rounded to whole hops).
+    #[arg(long, default_value_t = 1.0)]
+    pub block_s: f64,
+    /// No features: leave `peaks` and `indicators` empty.
+    #[arg(long)]
+    pub no_features: bool,
+    /// No trust figures: skip the hold-out solve (`cv_error` NaN, `trust` 0).
+    #[arg(long)]
+    pub no_trust: bool,
     /// Print the summary as one JSON object instead of text.
     #[arg(long)]
     pub json: bool,
@@ -78,6 +101,28 @@ pub fn run(args: ReplayArgs) -> anyhow::Result<ExitCode> {
         pipeline.warm_start = WarmStart::Cold;
     }
     pipeline.method = args.method;
+    anyhow::ensure!(
+        args.block_s.is_finite() && args.block_s > 0.0,
+        "--block-s must be a positive number of seconds, got {}",
+        args.block_s
+    );
+    pipeline.analytics.block_s = args.block_s;
+    pipeline.analytics.enabled = !args.no_features;
+    pipeline.trust.enabled = !args.no_trust;
+    if let Some(path) = &args.machines {
+        pipeline.analytics.machines = load_machines(path)?;
+    }
+    if let Some(ev) = &args.events {
+        anyhow::ensure!(
+            !ev.exists(),
+            "events file {} already exists; it is never overwritten",
+            ev.display()
+        );
+        anyhow::ensure!(
+            !args.no_features,
+            "--events needs the features (drop --no-features)"
+        );
+    }
     let mut keys = KeyRing::new(args.require_auth);
     for spec in &args.keys {
         let (node, hex) = spec
@@ -100,6 +145,7 @@ pub fn run(args: ReplayArgs) -> anyhow::Result<ExitCode> {
         keys,
         deflate: args.deflate,
         config_digest: digest,
+        events: args.events.clone(),
     };
     let bar = if args.quiet || args.json {
         ProgressBar::hidden()
@@ -150,9 +196,66 @@ pub fn run(args: ReplayArgs) -> anyhow::Result<ExitCode> {
         report.signal_s,
         report.wall_s
     );
+    if p.assessed_windows > 0 {
+        println!(
+            "trust       {} of {} windows low trust   hold-out solve {:.0}% of solve time",
+            p.low_trust_windows,
+            p.assessed_windows,
+            100.0 * p.trust_time_share
+        );
+    }
+    if p.blocks > 0 || p.skipped_blocks > 0 {
+        println!(
+            "features    {} blocks ({} low trust, {} skipped for gaps)   {} peak rows{}",
+            p.blocks,
+            p.low_trust_blocks,
+            p.skipped_blocks,
+            p.peak_rows,
+            report
+                .events
+                .as_ref()
+                .map_or(String::new(), |e| format!("   events {}", e.display()))
+        );
+    }
     println!(
         "file        {:.1} MiB",
         report.record_bytes as f64 / (1024.0 * 1024.0)
     );
     Ok(ExitCode::SUCCESS)
+}
+
+/// `[[machines]]` entries of a machines file.
+#[derive(Debug, serde::Deserialize)]
+#[serde(deny_unknown_fields)]
+struct MachinesFile {
+    machines: Vec<MachineEntry>,
+}
+
+/// Reads machine kinematics from a scenario file (a `[site]` table is present) or a file of
+/// `[[machines]]` entries.
+fn load_machines(path: &std::path::Path) -> anyhow::Result<Vec<MachineEntry>> {
+    let text = std::fs::read_to_string(path)
+        .with_context(|| format!("--machines: cannot read {}", path.display()))?;
+    let value: toml::Table = toml::from_str(&text)
+        .with_context(|| format!("--machines {}: not a TOML file", path.display()))?;
+    if value.contains_key("site") {
+        let scenario = Scenario::from_toml_str(&text, path)
+            .with_context(|| format!("--machines {}: read as a scenario file", path.display()))?;
+        return Ok(scenario
+            .machine_kinematics()
+            .into_iter()
+            .map(|(node, machine)| MachineEntry {
+                node,
+                channel: None,
+                machine,
+            })
+            .collect());
+    }
+    let file: MachinesFile = toml::from_str(&text).with_context(|| {
+        format!(
+            "--machines {}: expected a scenario file (with [site]) or [[machines]] entries",
+            path.display()
+        )
+    })?;
+    Ok(file.machines)
 }

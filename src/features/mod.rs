@@ -157,7 +157,9 @@ pub enum PeakSource {
     Envelope = 1,
 }
 
-/// One peak as the record file stores it.
+/// One peak as the record file stores it: the one definition of a `peaks` row. The record
+/// store writes it through an HDF5 twin of the same fields (`store::layout`), so this type
+/// builds without libhdf5.
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
 pub struct PeakRow {
     /// Block time, ns since the Unix epoch.
@@ -176,7 +178,8 @@ pub struct PeakRow {
     pub source: u8,
 }
 
-/// The overall indicators of one block as the record file stores them.
+/// The overall indicators of one block as the record file stores them: the one definition of
+/// an `indicators` row (see [`PeakRow`] for how the store writes it).
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
 pub struct IndicatorRow {
     /// Block time, ns since the Unix epoch.
@@ -199,6 +202,24 @@ pub struct IndicatorRow {
     pub zone: u8,
     /// 1 when the block's reconstruction is not trusted (set by the caller).
     pub low_trust: u8,
+}
+
+impl PeakRow {
+    /// The label as the fixed 16-byte ASCII field, or `None` if it is not ASCII or longer
+    /// than 16 bytes.
+    pub fn label_from_str(label: &str) -> Option<[u8; LABEL_MAX_LEN]> {
+        (label.is_ascii() && label.len() <= LABEL_MAX_LEN).then(|| label_bytes(label))
+    }
+
+    /// The label as text (up to the first NUL; empty when unlabelled).
+    pub fn label_str(&self) -> &str {
+        let end = self
+            .label
+            .iter()
+            .position(|&b| b == 0)
+            .unwrap_or(LABEL_MAX_LEN);
+        std::str::from_utf8(&self.label[..end]).unwrap_or("")
+    }
 }
 
 impl BlockFeatures {
@@ -289,6 +310,12 @@ impl BlockFeatures {
                 .map_or_else(Vec::new, |e| pick(&e.peaks)),
             trust: None,
             caution: CAUTION,
+            version: EVENT_VERSION,
+            units: String::new(),
+            envelope_band_hz: self
+                .envelope
+                .as_ref()
+                .map(|e| (e.band.low_hz, e.band.high_hz)),
         }
     }
 }
@@ -310,9 +337,31 @@ pub struct EventPeak {
     pub deviation_pct: Option<f64>,
 }
 
+/// Version of the [`FeatureEvent`] JSON format (`docs/events.md`); bumped on any change a
+/// reader could notice.
+pub const EVENT_VERSION: u32 = 1;
+
+/// Reconstruction trust of the windows behind one block.
+#[derive(Debug, Clone, Copy, PartialEq, Serialize, Deserialize)]
+pub struct BlockTrust {
+    /// Whether any window overlapping the block was low trust (the `low_trust` of the
+    /// block's indicator row).
+    pub low_trust: bool,
+    /// Windows overlapping the block.
+    pub windows: u32,
+    /// Of those, windows assessed as low trust.
+    pub low_trust_windows: u32,
+    /// Of those, windows with no assessment (trust off, or too few samples).
+    pub unassessed_windows: u32,
+    /// Largest cross-validation error among them (`None` when none was assessed).
+    pub max_cv_error: Option<f64>,
+}
+
 /// One JSON-lines object per block per stream.
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct FeatureEvent {
+    /// Format version, [`EVENT_VERSION`].
+    pub version: u32,
     /// Node id of the stream.
     pub node: u32,
     /// Channel of the stream on its node.
@@ -323,8 +372,13 @@ pub struct FeatureEvent {
     pub start_sample: u64,
     /// Samples in the block.
     pub len: u64,
+    /// Units of the stream's samples (amplitudes and RMS are in these units); empty when not
+    /// known.
+    pub units: String,
     /// Shaft rate used, Hz.
     pub shaft_hz: Option<f64>,
+    /// Band of the envelope analysis, Hz (`None` without one).
+    pub envelope_band_hz: Option<(f64, f64)>,
     /// Overall indicators.
     pub indicators: Indicators,
     /// Indicative severity zone.
@@ -333,8 +387,8 @@ pub struct FeatureEvent {
     pub peaks: Vec<EventPeak>,
     /// Top peaks of the envelope spectrum.
     pub envelope_peaks: Vec<EventPeak>,
-    /// Reconstruction trust of the block, filled in by the pipeline (placeholder).
-    pub trust: Option<f64>,
+    /// Reconstruction trust of the block's windows, filled in by the pipeline.
+    pub trust: Option<BlockTrust>,
     /// [`CAUTION`].
     pub caution: &'static str,
 }

@@ -5,8 +5,9 @@
 //! with the result, so any worker can take any window while the dispatcher keeps each stream's
 //! windows strictly sequential.
 
+use super::trust::{self, LowTrustReasons, TrustConfig, WindowTrust};
 use crate::basis::{BasisKind, BasisPlanner};
-use crate::packet::Packet;
+use crate::packet::{indices, Packet};
 use crate::solver::{SolveReport, SolveSettings, Solver};
 use std::collections::HashMap;
 use std::sync::Arc;
@@ -121,6 +122,8 @@ pub struct ReconstructJob {
     pub method: Method,
     /// The stream's state from its previous window.
     pub warm: WarmState,
+    /// Trust settings.
+    pub trust: Arc<TrustConfig>,
 }
 
 /// The outcome of one job.
@@ -134,8 +137,12 @@ pub struct ReconstructedWindow {
     pub packet: Packet,
     /// The reconstructed window on the full grid, or why it could not be reconstructed.
     pub outcome: Result<(Vec<f64>, SolveReport), String>,
-    /// Wall time of the solve in microseconds.
+    /// Wall time of the job in microseconds (the hold-out solve included).
     pub solve_time_us: f64,
+    /// Wall time of the hold-out solve alone, microseconds (0 without one).
+    pub trust_time_us: f64,
+    /// The trust figures (`None`: disabled, linear method, too few samples, or failed).
+    pub trust: Option<WindowTrust>,
     /// The stream's state for its next window.
     pub warm: WarmState,
 }
@@ -170,17 +177,93 @@ impl WorkerState {
                 packet: job.packet,
                 outcome: Ok((signal, report)),
                 solve_time_us: started.elapsed().as_secs_f64() * 1e6,
+                trust_time_us: 0.0,
+                trust: None,
                 warm,
             };
         }
+        let y: Vec<f64> = job.packet.values.iter().map(|&v| f64::from(v)).collect();
+        let previous = match job.warm_start {
+            WarmStart::Cold => None,
+            WarmStart::Previous => warm.coefficients.take().filter(|c| c.len() == n),
+        };
+        // The hold-out solve first, warm from the previous window; the full solve then starts
+        // from its solution, so it only has to absorb the held-out samples (see trust.rs).
+        let m = y.len();
+        let holdout = if job.trust.enabled {
+            job.trust.holdout_len(m)
+        } else {
+            None
+        };
+        let mut trust_time_us = 0.0;
+        let mut held = None;
+        let mut start = previous;
+        if let Some(h) = holdout {
+            let t = Instant::now();
+            let h_stream = job.packet.stream();
+            let seed = trust::holdout_seed(h_stream.node, h_stream.channel, job.packet.header.seq);
+            // Positions into the received arrays, sorted, a uniform h-subset of 0..m.
+            let out = indices::sample_indices(seed, m as u32, h as u32);
+            let mut is_out = vec![false; m];
+            for &p in &out {
+                is_out[p as usize] = true;
+            }
+            let (mut tr_idx, mut tr_y) = (Vec::with_capacity(m - h), Vec::with_capacity(m - h));
+            for j in 0..m {
+                if !is_out[j] {
+                    tr_idx.push(job.packet.indices[j]);
+                    tr_y.push(y[j]);
+                }
+            }
+            if let Ok((signal, coeffs, report)) = self.solve(
+                &tr_idx,
+                &tr_y,
+                job.basis,
+                n,
+                &job.settings,
+                start.as_deref(),
+            ) {
+                let y_h: Vec<f64> = out.iter().map(|&p| y[p as usize]).collect();
+                let pred: Vec<f64> = out
+                    .iter()
+                    .map(|&p| signal[job.packet.indices[p as usize] as usize])
+                    .collect();
+                let y_norm = y.iter().map(|v| v * v).sum::<f64>().sqrt();
+                held = Some((
+                    trust::cv_error(&y_h, &pred, y_norm, m),
+                    h,
+                    report.iterations,
+                ));
+                start = Some(coeffs);
+            }
+            trust_time_us = t.elapsed().as_secs_f64() * 1e6;
+        }
         let outcome = self.solve(
-            &job.packet,
+            &job.packet.indices,
+            &y,
             job.basis,
             n,
             &job.settings,
-            job.warm_start,
-            &warm,
+            start.as_deref(),
         );
+        let mut trust_figures = None;
+        if let (Some((cv, h, iterations)), Ok((_, coeffs, _))) = (held, &outcome) {
+            let cfg = &job.trust;
+            let k = trust::effective_support(coeffs, cfg.support_energy);
+            let need = trust::min_measurements(k, n);
+            trust_figures = Some(WindowTrust {
+                cv_error: cv,
+                holdout: h,
+                effective_support: k,
+                min_measurements: need,
+                reasons: LowTrustReasons {
+                    // NaN only for an all-zero window, which every solve reproduces exactly.
+                    cv_error: cv > cfg.max_cv_error,
+                    phase_transition: cfg.phase_transition && (m as f64) < need,
+                },
+                holdout_iterations: iterations,
+            });
+        }
         let outcome = match outcome {
             Ok((signal, coeffs, report)) => {
                 warm.coefficients = Some(coeffs);
@@ -197,6 +280,8 @@ impl WorkerState {
             packet: job.packet,
             outcome,
             solve_time_us: started.elapsed().as_secs_f64() * 1e6,
+            trust_time_us,
+            trust: trust_figures,
             warm,
         }
     }
@@ -204,12 +289,12 @@ impl WorkerState {
     #[allow(clippy::type_complexity)]
     fn solve(
         &mut self,
-        packet: &Packet,
+        indices: &[u32],
+        y: &[f64],
         basis: BasisKind,
         n: usize,
         settings: &SolveSettings,
-        policy: WarmStart,
-        warm: &WarmState,
+        start: Option<&[f64]>,
     ) -> Result<(Vec<f64>, Vec<f64>, SolveReport), String> {
         let solver = match self.solvers.entry((basis, n)) {
             std::collections::hash_map::Entry::Occupied(e) => e.into_mut(),
@@ -218,13 +303,8 @@ impl WorkerState {
                 v.insert(Solver::new(b))
             }
         };
-        let y: Vec<f64> = packet.values.iter().map(|&v| f64::from(v)).collect();
-        let start = match policy {
-            WarmStart::Cold => None,
-            WarmStart::Previous => warm.coefficients.as_deref().filter(|c| c.len() == n),
-        };
         let sol = solver
-            .solve(&packet.indices, &y, settings, start)
+            .solve(indices, y, settings, start)
             .map_err(|e| e.to_string())?;
         Ok((sol.signal, sol.lasso_coefficients, sol.report))
     }

@@ -7,6 +7,7 @@
 //! pipeline uses and takes, per stream, the first window it would emit; those headers give the
 //! stream declarations, identical to the ones the dispatcher sends later.
 
+use super::events::{EventError, JsonLinesFile};
 use super::run::{self, PipelineConfig, PipelineStats, PipelineSummary};
 use crate::packet::log::LogReader;
 use crate::packet::{Frame, KeyRing, Limits, Packet, StreamId};
@@ -133,6 +134,8 @@ pub struct ReplayOptions {
     pub deflate: Option<u8>,
     /// Digest of the configuration, written into the record.
     pub config_digest: String,
+    /// A new JSON-lines file for the feature events (`docs/events.md`), if wanted.
+    pub events: Option<PathBuf>,
 }
 
 /// Figures of a finished replay.
@@ -163,6 +166,8 @@ pub struct ReplayReport {
     pub realtime_factor: f64,
     /// Bytes of the record file.
     pub record_bytes: u64,
+    /// The events file written, if any.
+    pub events: Option<PathBuf>,
 }
 
 /// Replays `opts.logs` into the new record `opts.out`. `progress(done, total)` is called a few
@@ -185,6 +190,12 @@ pub fn replay(
         Some(p) if !p.as_os_str().is_empty() => p.to_path_buf(),
         _ => PathBuf::from("."),
     };
+    opts.pipeline.check().map_err(run::PipelineError::Config)?;
+    if let Some(ev) = &opts.events {
+        if ev.exists() {
+            return Err(run::PipelineError::Events(EventError::Exists(ev.clone())).into());
+        }
+    }
     let scan = scan_logs(&opts.logs, &opts.limits, &opts.keys, &opts.pipeline)?;
     if scan.windows == 0 {
         return Err(ReplayError::NoWindows);
@@ -210,7 +221,18 @@ pub fn replay(
 
     let stats = Arc::new(PipelineStats::default());
     let (tx, rx) = tokio::sync::mpsc::channel::<Packet>(256);
-    let pipe = run::spawn(opts.pipeline.clone(), rx, sink.sender(), Arc::clone(&stats));
+    let mut outputs = run::PipelineOutputs::default();
+    if let Some(path) = &opts.events {
+        let file = JsonLinesFile::create(path).map_err(run::PipelineError::Events)?;
+        outputs.events.push(Box::new(file));
+    }
+    let pipe = run::spawn_with(
+        opts.pipeline.clone(),
+        rx,
+        sink.sender(),
+        Arc::clone(&stats),
+        outputs,
+    );
     let logs = opts.logs.clone();
     let limits = opts.limits.clone();
     let keys = opts.keys.clone();
@@ -281,6 +303,7 @@ pub fn replay(
         wall_s,
         signal_s,
         record_bytes,
+        events: opts.events.clone(),
     })
 }
 
@@ -294,6 +317,7 @@ pub fn replay_default(logs: &[PathBuf], out: &Path) -> Result<ReplayReport, Repl
         keys: KeyRing::new(false),
         deflate: None,
         config_digest: String::new(),
+        events: None,
     };
     replay(&opts, |_, _| {})
 }

@@ -19,8 +19,11 @@
 //! The live gateway and the offline replay both run exactly this code; only the source of the
 //! packet channel differs.
 
+use super::analytics::{self, AnalyticsConfig, AnalyticsMsg, AnalyticsStats};
+use super::events::{EventError, EventSink};
 use super::pool::WorkerPool;
 use super::reconstruct::{ReconstructJob, ReconstructedWindow, WarmStart, WarmState, WorkerState};
+use super::trust::TrustConfig;
 use crate::basis::{BasisKind, BasisPlanner};
 use crate::packet::{Packet, StreamId};
 use crate::solver::{SolveSettings, StopReason};
@@ -64,6 +67,19 @@ pub struct PipelineConfig {
     /// Windows allowed to wait for a worker, over all streams, before the dispatcher stops
     /// taking packets. Default 256 (about 8 MiB of f32 samples at m = 1024 plus headers).
     pub max_queued_windows: usize,
+    /// Per-window trust figures (`windows.cv_error`, `windows.trust`). Default on.
+    pub trust: TrustConfig,
+    /// Features per block (`peaks`, `indicators`, events), with the machines' kinematics.
+    /// Default on, shaft speed estimated, no bearings or gears known.
+    pub analytics: AnalyticsConfig,
+}
+
+impl PipelineConfig {
+    /// Checks the settings that serde cannot; the message names the field.
+    pub fn check(&self) -> Result<(), String> {
+        self.trust.check()?;
+        self.analytics.check()
+    }
 }
 
 impl Default for PipelineConfig {
@@ -83,6 +99,8 @@ impl Default for PipelineConfig {
             method: Default::default(),
             reorder: ReorderConfig::default(),
             max_queued_windows: 256,
+            trust: TrustConfig::default(),
+            analytics: AnalyticsConfig::default(),
         }
     }
 }
@@ -130,6 +148,18 @@ pub struct PipelineStats {
     pub residual_worst_bits: AtomicU64,
     /// Sum of solver iterations.
     pub iterations: AtomicU64,
+    /// Windows with trust figures.
+    pub assessed_windows: AtomicU64,
+    /// Windows assessed as low trust.
+    pub low_trust_windows: AtomicU64,
+    /// FISTA iterations of the hold-out solves (the extra cost of the trust figures).
+    pub trust_iterations: AtomicU64,
+    /// Nanoseconds of the hold-out solves.
+    pub trust_ns: AtomicU64,
+    /// Nanoseconds of whole reconstruction jobs (hold-out solve included).
+    pub job_ns: AtomicU64,
+    /// Counters of the analytics stage.
+    pub analytics: Arc<AnalyticsStats>,
 }
 
 impl PipelineStats {
@@ -158,6 +188,28 @@ impl PipelineStats {
             } else {
                 0.0
             },
+            assessed_windows: self.assessed_windows.load(Ordering::Relaxed),
+            low_trust_windows: self.low_trust_windows.load(Ordering::Relaxed),
+            mean_trust_iterations: if windows > 0 {
+                self.trust_iterations.load(Ordering::Relaxed) as f64 / windows as f64
+            } else {
+                0.0
+            },
+            trust_time_share: {
+                let job = self.job_ns.load(Ordering::Relaxed);
+                if job > 0 {
+                    self.trust_ns.load(Ordering::Relaxed) as f64 / job as f64
+                } else {
+                    0.0
+                }
+            },
+            blocks: self.analytics.blocks.load(Ordering::Relaxed),
+            low_trust_blocks: self.analytics.low_trust_blocks.load(Ordering::Relaxed),
+            skipped_blocks: self.analytics.skipped_gap.load(Ordering::Relaxed),
+            peak_rows: self.analytics.peak_rows.load(Ordering::Relaxed),
+            events: self.analytics.events.load(Ordering::Relaxed),
+            analytics_busy_s: self.analytics.busy_ns.load(Ordering::Relaxed) as f64 * 1e-9,
+            solve_busy_s: self.job_ns.load(Ordering::Relaxed) as f64 * 1e-9,
         }
     }
 
@@ -202,8 +254,30 @@ pub struct PipelineSummary {
     pub mean_residual: f64,
     /// Worst relative residual.
     pub worst_residual: f64,
-    /// Mean solver iterations per window.
+    /// Mean solver iterations per window (the full solve).
     pub mean_iterations: f64,
+    /// Windows with trust figures.
+    pub assessed_windows: u64,
+    /// Windows assessed as low trust.
+    pub low_trust_windows: u64,
+    /// Mean FISTA iterations of the hold-out solve per window.
+    pub mean_trust_iterations: f64,
+    /// Share of the reconstruction jobs' time spent in hold-out solves.
+    pub trust_time_share: f64,
+    /// Blocks analysed.
+    pub blocks: u64,
+    /// Blocks marked low trust.
+    pub low_trust_blocks: u64,
+    /// Blocks skipped because of a gap.
+    pub skipped_blocks: u64,
+    /// Peak rows written.
+    pub peak_rows: u64,
+    /// Events sent to the event sinks.
+    pub events: u64,
+    /// CPU seconds of feature extraction.
+    pub analytics_busy_s: f64,
+    /// CPU seconds of reconstruction jobs (hold-out solves included).
+    pub solve_busy_s: f64,
 }
 
 /// Errors that stop the pipeline.
@@ -216,6 +290,30 @@ pub enum PipelineError {
     /// The record writer stopped (its own error comes back through its join handle).
     #[error("the record writer stopped")]
     SinkStopped,
+    /// A setting is out of range.
+    #[error("invalid pipeline configuration: {0}")]
+    Config(String),
+    /// An event sink failed (the record itself is complete).
+    #[error(transparent)]
+    Events(#[from] EventError),
+    /// The analytics thread could not be started or stopped unexpectedly.
+    #[error("the analytics thread stopped")]
+    AnalyticsStopped,
+}
+
+/// Where a pipeline's outputs go besides the record: event sinks for the analytics stage.
+#[derive(Default)]
+pub struct PipelineOutputs {
+    /// Every event goes to each sink (see [`super::events`]).
+    pub events: Vec<Box<dyn EventSink>>,
+}
+
+impl std::fmt::Debug for PipelineOutputs {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("PipelineOutputs")
+            .field("events", &self.events.len())
+            .finish()
+    }
 }
 
 /// What waits in a stream's queue, in stream order.
@@ -254,15 +352,45 @@ struct CaptureGrid {
     awaiting_first: bool,
 }
 
-/// Runs the pipeline until `packets` closes and everything is written to `record`.
+/// Runs the pipeline until `packets` closes and everything is written to `record`, with no
+/// event sinks (features still go to the record when `config.analytics.enabled`).
 ///
 /// Blocking: call it on a thread of its own (see [`spawn`]).
 pub fn run(
     config: &PipelineConfig,
-    mut packets: mpsc::Receiver<Packet>,
+    packets: mpsc::Receiver<Packet>,
     record: SyncSender<RecordMsg>,
     stats: Arc<PipelineStats>,
 ) -> Result<PipelineSummary, PipelineError> {
+    run_with(config, packets, record, stats, PipelineOutputs::default())
+}
+
+/// [`run`] with event sinks for the analytics stage.
+pub fn run_with(
+    config: &PipelineConfig,
+    mut packets: mpsc::Receiver<Packet>,
+    record: SyncSender<RecordMsg>,
+    stats: Arc<PipelineStats>,
+    outputs: PipelineOutputs,
+) -> Result<PipelineSummary, PipelineError> {
+    config.check().map_err(PipelineError::Config)?;
+    let analytics = if config.analytics.enabled {
+        let (tx, rx) = std::sync::mpsc::sync_channel(config.analytics.channel_capacity);
+        let acfg = config.analytics.clone();
+        let rec = record.clone();
+        let st = Arc::clone(&stats.analytics);
+        let handle = std::thread::Builder::new()
+            .name("csgate-analytics".into())
+            .spawn(move || analytics::run(&acfg, rx, rec, outputs.events, st))
+            .map_err(|_| PipelineError::AnalyticsStopped)?;
+        Some((tx, handle))
+    } else {
+        None
+    };
+    let (analytics_tx, analytics_handle) = match analytics {
+        Some((tx, h)) => (Some(tx), Some(h)),
+        None => (None, None),
+    };
     let planner = Arc::new(BasisPlanner::<f64>::new());
     let (done_tx, mut done_rx) = mpsc::unbounded_channel::<ReconstructedWindow>();
     let pool = WorkerPool::start(
@@ -276,6 +404,8 @@ pub fn run(
     let mut d = Dispatcher {
         config,
         settings: Arc::new(config.solver.clone()),
+        trust: Arc::new(config.trust.clone()),
+        analytics: analytics_tx,
         reorder: Reorderer::new(config.reorder.clone()),
         slots: Vec::new(),
         by_stream: HashMap::new(),
@@ -292,7 +422,7 @@ pub fn run(
         }
         let accepting = sources_open && d.queued < config.max_queued_windows;
         enum Ev {
-            Done(ReconstructedWindow),
+            Done(Box<ReconstructedWindow>),
             Packet(Packet),
             SourcesClosed,
             Idle,
@@ -300,7 +430,7 @@ pub fn run(
         let ev = futures::executor::block_on(async {
             tokio::select! {
                 biased;
-                Some(r) = done_rx.recv(), if d.in_flight > 0 => Ev::Done(r),
+                Some(r) = done_rx.recv(), if d.in_flight > 0 => Ev::Done(Box::new(r)),
                 p = packets.recv(), if accepting => match p {
                     Some(p) => Ev::Packet(p),
                     None => Ev::SourcesClosed,
@@ -309,7 +439,7 @@ pub fn run(
             }
         });
         match ev {
-            Ev::Done(r) => d.on_done(r)?,
+            Ev::Done(r) => d.on_done(*r)?,
             Ev::Packet(p) => {
                 stats.packets.fetch_add(1, Ordering::Relaxed);
                 let events: Vec<ReorderEvent> = d.reorder.push(p).collect();
@@ -333,8 +463,14 @@ pub fn run(
     for slot in 0..d.slots.len() {
         d.finish_stitcher(slot)?;
     }
-    let Dispatcher { pool, .. } = d;
+    let Dispatcher {
+        pool, analytics, ..
+    } = d;
     pool.join();
+    drop(analytics);
+    if let Some(h) = analytics_handle {
+        h.join().map_err(|_| PipelineError::AnalyticsStopped)??;
+    }
     Ok(stats.summary())
 }
 
@@ -345,15 +481,28 @@ pub fn spawn(
     record: SyncSender<RecordMsg>,
     stats: Arc<PipelineStats>,
 ) -> std::thread::JoinHandle<Result<PipelineSummary, PipelineError>> {
+    spawn_with(config, packets, record, stats, PipelineOutputs::default())
+}
+
+/// Starts [`run_with`] on a thread of its own.
+pub fn spawn_with(
+    config: PipelineConfig,
+    packets: mpsc::Receiver<Packet>,
+    record: SyncSender<RecordMsg>,
+    stats: Arc<PipelineStats>,
+    outputs: PipelineOutputs,
+) -> std::thread::JoinHandle<Result<PipelineSummary, PipelineError>> {
     std::thread::Builder::new()
         .name("csgate-dispatch".into())
-        .spawn(move || run(&config, packets, record, stats))
+        .spawn(move || run_with(&config, packets, record, stats, outputs))
         .expect("spawn the dispatcher thread")
 }
 
 struct Dispatcher<'a> {
     config: &'a PipelineConfig,
     settings: Arc<SolveSettings>,
+    trust: Arc<TrustConfig>,
+    analytics: Option<SyncSender<AnalyticsMsg>>,
     reorder: Reorderer,
     slots: Vec<StreamSlot>,
     by_stream: HashMap<StreamId, usize>,
@@ -390,6 +539,24 @@ impl Dispatcher<'_> {
         self.record
             .send(msg)
             .map_err(|_| PipelineError::SinkStopped)
+    }
+
+    /// Sends to the analytics thread, if there is one (blocking while its queue is full).
+    fn to_analytics(&self, msg: AnalyticsMsg) -> Result<(), PipelineError> {
+        match &self.analytics {
+            Some(tx) => tx.send(msg).map_err(|_| PipelineError::AnalyticsStopped),
+            None => Ok(()),
+        }
+    }
+
+    /// Waits until the analytics thread has handled everything sent so far.
+    fn analytics_barrier(&self) -> Result<(), PipelineError> {
+        if self.analytics.is_none() {
+            return Ok(());
+        }
+        let (ack_tx, ack_rx) = std::sync::mpsc::sync_channel(1);
+        self.to_analytics(AnalyticsMsg::Barrier(ack_tx))?;
+        ack_rx.recv().map_err(|_| PipelineError::AnalyticsStopped)
     }
 
     fn on_events(&mut self, events: Vec<ReorderEvent>) -> Result<(), PipelineError> {
@@ -506,12 +673,23 @@ impl Dispatcher<'_> {
             }))?;
             self.slots[s].declared = true;
         } else {
+            // The analytics rows of the old capture must reach the writer before the new
+            // segment moves its position mapping (capture restarts are rare; waiting is cheap).
+            self.analytics_barrier()?;
             self.send(RecordMsg::Segment {
                 stream: key,
                 capture_id: h.capture_id,
                 t0_unix_ns: t0_ns,
             })?;
         }
+        self.to_analytics(AnalyticsMsg::Capture {
+            slot: s,
+            key,
+            sample_rate_hz: h.sample_rate_hz,
+            t0_unix_ns: t0_ns,
+            hop_len: h.hop_len,
+            units: h.units.symbol().to_string(),
+        })?;
         let cfg = StitchConfig {
             window_len: h.window_len as usize,
             hop_len: h.hop_len as usize,
@@ -550,6 +728,7 @@ impl Dispatcher<'_> {
                         warm_start: self.config.warm_start,
                         method: self.config.method,
                         warm: std::mem::take(&mut self.slots[s].warm),
+                        trust: Arc::clone(&self.trust),
                     };
                     if self.pool.submit(job).is_err() {
                         return Err(PipelineError::SinkStopped);
@@ -581,6 +760,7 @@ impl Dispatcher<'_> {
         if let Some(mut st) = self.slots[s].stitcher.take() {
             let items = st.finish();
             self.emit(s, items)?;
+            self.to_analytics(AnalyticsMsg::End { slot: s })?;
         }
         Ok(())
     }
@@ -596,6 +776,33 @@ impl Dispatcher<'_> {
             Ok((signal, report)) => {
                 self.stats
                     .note_report(report.relative_residual, report.iterations);
+                self.stats
+                    .job_ns
+                    .fetch_add((r.solve_time_us * 1e3) as u64, Ordering::Relaxed);
+                self.stats
+                    .trust_ns
+                    .fetch_add((r.trust_time_us * 1e3) as u64, Ordering::Relaxed);
+                let (cv_error, trust_code) = match &r.trust {
+                    Some(t) => {
+                        self.stats.assessed_windows.fetch_add(1, Ordering::Relaxed);
+                        self.stats
+                            .trust_iterations
+                            .fetch_add(t.holdout_iterations as u64, Ordering::Relaxed);
+                        if t.low() {
+                            self.stats.low_trust_windows.fetch_add(1, Ordering::Relaxed);
+                            (t.cv_error, trust::LOW)
+                        } else {
+                            (t.cv_error, trust::OK)
+                        }
+                    }
+                    None => (f64::NAN, trust::UNKNOWN),
+                };
+                self.to_analytics(AnalyticsMsg::Window {
+                    slot: s,
+                    start: r.start,
+                    len: u64::from(h.window_len),
+                    trust: r.trust.as_ref().map(|t| (t.cv_error, t.low())),
+                })?;
                 let row = WindowRow {
                     seq: h.seq,
                     capture_id: h.capture_id,
@@ -610,8 +817,8 @@ impl Dispatcher<'_> {
                     support: report.support as u32,
                     stop_reason: stop_code(report.stop, r.packet.indices.len(), h.window_len),
                     solve_time_us: r.solve_time_us,
-                    cv_error: f64::NAN,
-                    trust: trust::UNKNOWN,
+                    cv_error,
+                    trust: trust_code,
                 };
                 self.send(RecordMsg::Window { stream: key, row })?;
                 let items = match self.slots[s].stitcher.as_mut() {
@@ -650,6 +857,13 @@ impl Dispatcher<'_> {
                     self.stats
                         .samples
                         .fetch_add(samples.len() as u64, Ordering::Relaxed);
+                    if self.analytics.is_some() {
+                        self.to_analytics(AnalyticsMsg::Samples {
+                            slot: s,
+                            start,
+                            samples: samples.clone(),
+                        })?;
+                    }
                     self.send(RecordMsg::Samples {
                         stream: key,
                         start,
@@ -658,6 +872,11 @@ impl Dispatcher<'_> {
                 }
                 StitchItem::Gap { start, len, reason } => {
                     self.stats.gaps.fetch_add(1, Ordering::Relaxed);
+                    self.to_analytics(AnalyticsMsg::Gap {
+                        slot: s,
+                        start,
+                        len,
+                    })?;
                     self.stats.samples.fetch_add(len, Ordering::Relaxed);
                     self.send(RecordMsg::Gap {
                         stream: key,

@@ -288,7 +288,43 @@ pub fn parse_units(symbol: &str) -> Option<Units> {
         .find(|u| u.symbol() == symbol)
 }
 
+impl Scenario {
+    /// The kinematics of every node's machine, for labelling its peaks: `(node id, machine)`.
+    pub fn machine_kinematics(&self) -> Vec<(u32, crate::features::kinematics::Kinematics)> {
+        self.nodes.iter().map(|n| (n.id, n.kinematics())).collect()
+    }
+}
+
 impl NodeSpec {
+    /// What the analytics stage needs to know of this node's machine: the nominal shaft
+    /// speed (given, not estimated; the simulated wander of +/-0.5% stays inside the labels'
+    /// 2% tolerance), the bearing geometry and the gear's teeth. Blade pass has no label.
+    pub fn kinematics(&self) -> crate::features::kinematics::Kinematics {
+        use crate::features::kinematics::{BearingGeometry, GearMesh, Kinematics, ShaftSpeed};
+        let m = &self.machine;
+        Kinematics {
+            shaft: ShaftSpeed::Hz(m.nominal_shaft_hz()),
+            bearings: m
+                .bearing
+                .iter()
+                .map(|b| BearingGeometry {
+                    elements: b.rolling_elements,
+                    element_diameter_mm: b.element_diameter_mm,
+                    pitch_diameter_mm: b.pitch_diameter_mm,
+                    contact_angle_deg: b.contact_angle_deg,
+                })
+                .collect(),
+            gears: m
+                .gear
+                .iter()
+                .map(|g| GearMesh {
+                    teeth: g.teeth,
+                    mating_teeth: None,
+                })
+                .collect(),
+        }
+    }
+
     /// Hop between window starts, grid instants.
     pub fn hop(&self) -> u32 {
         self.hop_len.unwrap_or(self.window_len / 2)

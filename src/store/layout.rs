@@ -164,50 +164,148 @@ pub struct SegmentRow {
     pub t0_unix_ns: i64,
 }
 
-/// A spectral peak (filled by the analytics stage).
+pub use crate::features::{IndicatorRow, PeakRow};
+
+/// The on-disk form of a [`PeakRow`] (the one definition of the row's fields is the plain
+/// type in `features`, which builds without libhdf5). The conversions destructure every field,
+/// so a field added to one and not the other does not compile.
 #[derive(H5Type, Clone, Copy, Debug, PartialEq)]
 #[repr(C)]
-pub struct PeakRow {
-    /// Time the spectrum refers to (its block's first sample), Unix nanoseconds.
-    pub t_unix_ns: i64,
-    /// Peak frequency in Hz.
-    pub freq_hz: f64,
-    /// Peak amplitude in the stream's units.
-    pub amplitude: f64,
-    /// Prominence over the local floor, dB.
-    pub prominence_db: f64,
-    /// Label such as "1X" or "GMF+1", ASCII, at most 16 bytes.
-    pub label: FixedAscii<16>,
-    /// Harmonic order (0 if not a harmonic).
-    pub order: i32,
-    /// Which spectrum the peak came from ([`peak_source`] codes).
-    pub source: u8,
+pub(crate) struct H5PeakRow {
+    t_unix_ns: i64,
+    freq_hz: f64,
+    amplitude: f64,
+    prominence_db: f64,
+    label: FixedAscii<16>,
+    order: i32,
+    source: u8,
 }
 
-/// Condition indicators of one block of samples (filled by the analytics stage).
+impl From<&PeakRow> for H5PeakRow {
+    fn from(r: &PeakRow) -> Self {
+        let PeakRow {
+            t_unix_ns,
+            freq_hz,
+            amplitude,
+            prominence_db,
+            label,
+            order,
+            source,
+        } = *r;
+        // Non-ASCII bytes were replaced by `label_bytes`; any left become '?'.
+        let ascii = label.map(|b| if b.is_ascii() { b } else { b'?' });
+        let end = ascii.iter().position(|&b| b == 0).unwrap_or(ascii.len());
+        Self {
+            t_unix_ns,
+            freq_hz,
+            amplitude,
+            prominence_db,
+            label: FixedAscii::from_ascii(&ascii[..end]).unwrap_or_default(),
+            order,
+            source,
+        }
+    }
+}
+
+impl From<&H5PeakRow> for PeakRow {
+    fn from(r: &H5PeakRow) -> Self {
+        let H5PeakRow {
+            t_unix_ns,
+            freq_hz,
+            amplitude,
+            prominence_db,
+            label,
+            order,
+            source,
+        } = *r;
+        let mut bytes = [0u8; crate::features::label::LABEL_MAX_LEN];
+        for (d, s) in bytes.iter_mut().zip(label.as_bytes()) {
+            *d = *s;
+        }
+        Self {
+            t_unix_ns,
+            freq_hz,
+            amplitude,
+            prominence_db,
+            label: bytes,
+            order,
+            source,
+        }
+    }
+}
+
+/// The on-disk form of an [`IndicatorRow`] (see [`H5PeakRow`]).
 #[derive(H5Type, Clone, Copy, Debug, PartialEq)]
 #[repr(C)]
-pub struct IndicatorRow {
-    /// Time of the block's first sample, Unix nanoseconds.
-    pub t_unix_ns: i64,
-    /// Index into `samples` of the block's first sample.
-    pub start_sample: u64,
-    /// Block length in samples.
-    pub len: u64,
-    /// Root mean square.
-    pub rms: f64,
-    /// Peak absolute value.
-    pub peak: f64,
-    /// Crest factor, peak / rms.
-    pub crest: f64,
-    /// Kurtosis (non-excess).
-    pub kurtosis: f64,
-    /// RMS velocity in mm/s.
-    pub velocity_rms_mm_s: f64,
-    /// Severity zone ([`zone`] codes).
-    pub zone: u8,
-    /// 1 if the block's windows were of low trust, else 0.
-    pub low_trust: u8,
+pub(crate) struct H5IndicatorRow {
+    t_unix_ns: i64,
+    start_sample: u64,
+    len: u64,
+    rms: f64,
+    peak: f64,
+    crest: f64,
+    kurtosis: f64,
+    velocity_rms_mm_s: f64,
+    zone: u8,
+    low_trust: u8,
+}
+
+impl From<&IndicatorRow> for H5IndicatorRow {
+    fn from(r: &IndicatorRow) -> Self {
+        let IndicatorRow {
+            t_unix_ns,
+            start_sample,
+            len,
+            rms,
+            peak,
+            crest,
+            kurtosis,
+            velocity_rms_mm_s,
+            zone,
+            low_trust,
+        } = *r;
+        Self {
+            t_unix_ns,
+            start_sample,
+            len,
+            rms,
+            peak,
+            crest,
+            kurtosis,
+            velocity_rms_mm_s,
+            zone,
+            low_trust,
+        }
+    }
+}
+
+impl From<&H5IndicatorRow> for IndicatorRow {
+    fn from(r: &H5IndicatorRow) -> Self {
+        let H5IndicatorRow {
+            t_unix_ns,
+            start_sample,
+            len,
+            rms,
+            peak,
+            crest,
+            kurtosis,
+            velocity_rms_mm_s,
+            zone,
+            low_trust,
+        } = *r;
+        Self {
+            t_unix_ns,
+            start_sample,
+            len,
+            rms,
+            peak,
+            crest,
+            kurtosis,
+            velocity_rms_mm_s,
+            zone,
+            low_trust,
+        }
+    }
 }
 
 /// Why a file was closed, the `reason` of a [`ClosedRow`].
@@ -226,12 +324,4 @@ pub struct ClosedRow {
     pub t_unix_ns: i64,
     /// [`close_reason`] code.
     pub reason: u8,
-}
-
-impl PeakRow {
-    /// Converts a label to the fixed 16-byte ASCII field, or `None` if it is not ASCII or is
-    /// longer than 16 bytes.
-    pub fn label_from_str(label: &str) -> Option<FixedAscii<16>> {
-        FixedAscii::from_ascii(label.as_bytes()).ok()
-    }
 }

@@ -1,7 +1,10 @@
 //! [`RecordReader`]: read-only access to a record file, opened in SWMR read mode so that it
 //! works on a file still being written and on one left by a killed writer.
 
-use super::layout::{self, ClosedRow, GapRow, IndicatorRow, PeakRow, SegmentRow, WindowRow};
+use super::layout::{
+    self, ClosedRow, GapRow, H5IndicatorRow, H5PeakRow, IndicatorRow, PeakRow, SegmentRow,
+    WindowRow,
+};
 use super::writer::{StreamKey, StreamMeta};
 use super::StoreError;
 use hdf5::types::VarLenUnicode;
@@ -168,12 +171,14 @@ impl RecordReader {
 
     /// The peak rows of a stream.
     pub fn peaks(&self, key: StreamKey) -> Result<Vec<PeakRow>, StoreError> {
-        self.rows(key, layout::PEAKS)
+        let rows: Vec<H5PeakRow> = self.rows(key, layout::PEAKS)?;
+        Ok(rows.iter().map(PeakRow::from).collect())
     }
 
     /// The indicator rows of a stream.
     pub fn indicators(&self, key: StreamKey) -> Result<Vec<IndicatorRow>, StoreError> {
-        self.rows(key, layout::INDICATORS)
+        let rows: Vec<H5IndicatorRow> = self.rows(key, layout::INDICATORS)?;
+        Ok(rows.iter().map(IndicatorRow::from).collect())
     }
 
     /// The `closed` rows: one if the writer closed the file cleanly, none if it died.

@@ -5,7 +5,10 @@
 //! to SWMR. From then on only appends happen, because HDF5 cannot create objects in an SWMR
 //! file; end-of-file information therefore goes into the pre-created `closed` dataset.
 
-use super::layout::{self, ClosedRow, GapRow, IndicatorRow, PeakRow, SegmentRow, WindowRow};
+use super::layout::{
+    self, ClosedRow, GapRow, H5IndicatorRow, H5PeakRow, IndicatorRow, PeakRow, SegmentRow,
+    WindowRow,
+};
 use super::time::{grid_time, iso8601_utc, now_unix_ns};
 use super::{GapReason, StoreError};
 use hdf5::types::VarLenUnicode;
@@ -431,7 +434,7 @@ impl RecordWriter {
         let path = self.path.clone();
         let state = self.state(key)?;
         state
-            .append(ROW_PEAKS, &[row])
+            .append(ROW_PEAKS, &[H5PeakRow::from(&row)])
             .map_err(StoreError::hdf5(&path))
     }
 
@@ -446,7 +449,7 @@ impl RecordWriter {
         let mut row = row;
         row.start_sample = state.index_of(row.start_sample).max(0) as u64;
         state
-            .append(ROW_INDICATORS, &[row])
+            .append(ROW_INDICATORS, &[H5IndicatorRow::from(&row)])
             .map_err(StoreError::hdf5(&path))
     }
 
@@ -683,8 +686,8 @@ fn create_stream(
         windows: create_rows::<WindowRow>(&group, layout::WINDOWS, rc)?,
         gaps: create_rows::<GapRow>(&group, layout::GAPS, rc)?,
         segments: create_rows::<SegmentRow>(&group, layout::SEGMENTS, rc)?,
-        peaks: create_rows::<PeakRow>(&group, layout::PEAKS, rc)?,
-        indicators: create_rows::<IndicatorRow>(&group, layout::INDICATORS, rc)?,
+        peaks: create_rows::<H5PeakRow>(&group, layout::PEAKS, rc)?,
+        indicators: create_rows::<H5IndicatorRow>(&group, layout::INDICATORS, rc)?,
         len: 0,
         rows: [0; 5],
         capture_id: cursor.capture_id,

@@ -27,7 +27,9 @@ def run(tmp_path_factory):
     subprocess.run([BIN, "simulate", "--scenario", str(ROOT / "configs/demo-site.toml"),
                     "--out", str(log), "--truth", str(truth), "--duration", "4", "--quiet"],
                    check=True)
-    subprocess.run([BIN, "replay", str(log), "--key", DEMO_KEY, "--out", str(rec), "--quiet"],
+    subprocess.run([BIN, "replay", str(log), "--key", DEMO_KEY, "--out", str(rec), "--quiet",
+                    "--machines", str(ROOT / "configs/demo-site.toml"),
+                    "--events", str(d / "events.jsonl")],
                    check=True, capture_output=True)
     subprocess.run([BIN, "replay", str(log), "--key", DEMO_KEY, "--method", "linear",
                     "--out", str(lin), "--quiet"], check=True, capture_output=True)
@@ -79,3 +81,55 @@ def test_record_matches_truth_better_than_interpolation(run):
             ours, theirs = snr_db(x, ref), snr_db(xl, refl)
             print(f"stream {node}/{ch}: record {ours:.2f} dB, linear interpolation {theirs:.2f} dB")
             assert ours > theirs, (node, ch, ours, theirs)
+
+
+PEAK_FIELDS = [
+    ("t_unix_ns", "<i8"), ("freq_hz", "<f8"), ("amplitude", "<f8"), ("prominence_db", "<f8"),
+    ("label", "|S16"), ("order", "<i4"), ("source", "|u1"),
+]
+INDICATOR_FIELDS = [
+    ("t_unix_ns", "<i8"), ("start_sample", "<u8"), ("len", "<u8"), ("rms", "<f8"),
+    ("peak", "<f8"), ("crest", "<f8"), ("kurtosis", "<f8"), ("velocity_rms_mm_s", "<f8"),
+    ("zone", "|u1"), ("low_trust", "|u1"),
+]
+
+
+def fields(ds):
+    return [(name, ds.dtype.fields[name][0].str) for name in ds.dtype.names]
+
+
+def test_analytics_rows_trust_and_events(run):
+    """docs/hdf5-layout.md (peaks, indicators, trust figures) and docs/events.md."""
+    import json
+    _, _, rec = run
+    with h5py.File(rec, "r", libver="latest", swmr=True) as f:
+        for node, ch in VIBRATION + [(101, 1), (103, 1)]:
+            g = f[f"/streams/{node}/{ch}"]
+            assert fields(g["peaks"]) == PEAK_FIELDS and fields(g["indicators"]) == INDICATOR_FIELDS
+            ind, peaks, w = g["indicators"][...], g["peaks"][...], g["windows"][...]
+            rate = g["samples"].attrs["sample_rate_hz"]
+            # 4 s at 25.6 kHz in blocks of 13 hops of 2048 (1.04 s): 3 complete blocks.
+            assert len(ind) == 3 and (ind["len"] == 13 * 2048).all()
+            assert (ind["start_sample"] == np.arange(3) * 13 * 2048).all()
+            assert set(peaks["t_unix_ns"]) == set(ind["t_unix_ns"])
+            assert set(np.unique(peaks["source"])) <= {0, 1}
+            assert np.isfinite(w["cv_error"]).all() and set(np.unique(w["trust"])) <= {1, 2}
+            low_windows = w["trust"] == 2
+            assert (ind["low_trust"] <= 1).all()
+            if not low_windows.any():
+                assert (ind["low_trust"] == 0).all()
+            if g["samples"].attrs["units"] == "Pa":
+                assert np.isnan(ind["velocity_rms_mm_s"]).all() and (ind["zone"] == 0).all()
+            else:
+                assert np.isfinite(ind["velocity_rms_mm_s"]).all() and (ind["zone"] >= 1).all()
+            del rate
+        # Node 102 has an outer-race spall (configs/demo-site.toml): BPFO in its envelope.
+        p = f["/streams/102/0/peaks"][...]
+        env = p[p["source"] == 1]
+        assert b"BPFO" in set(env["label"]), env["label"]
+    lines = (rec.parent / "events.jsonl").read_text().splitlines()
+    assert len(lines) == 6 * 3
+    for line in lines:
+        e = json.loads(line)
+        assert e["version"] == 1 and "qualified analyst" in e["caution"]
+        assert {"indicators", "peaks", "envelope_peaks", "trust", "zone", "units"} <= set(e)
