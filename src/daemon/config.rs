@@ -361,10 +361,11 @@ impl GatewayConfig {
                 let line = inner.span().map(|s| line_of(text, s.start)).unwrap_or(0);
                 let message = inner.message().trim().to_string();
                 if let Some(field) = unknown_field(&message) {
-                    let key = if path == "." || path.is_empty() {
+                    let key = if path == "." || path.is_empty() || path == field {
                         field
+                    } else if path.ends_with(&format!(".{field}")) {
+                        path
                     } else {
-                        // serde_path_to_error stops at the table holding the unknown key
                         format!("{path}.{field}")
                     };
                     return Err(ConfigError::UnknownKey { file, key });
