@@ -6,8 +6,8 @@
 //! windows went out intact, which were dropped or corrupted) as the outside reference.
 
 use crate::util::{csgate_bin, test_dir};
-use csgate::daemon::{Gateway, GatewayConfig, Shutdown};
 use csgate::daemon::config::NodeEntry;
+use csgate::daemon::{Gateway, GatewayConfig, Shutdown};
 use csgate::sim::run::{parse_faults, send_to_target};
 use csgate::sim::{Scenario, Simulation};
 use csgate::sources::{Pace, WindowKey};
@@ -113,13 +113,21 @@ async fn simulated_nodes_to_records_with_metrics_and_feed() {
 
     let sim = Simulation::new(&scenario, 2.0, false);
     let plan = parse_faults("drop=0.05,dup=0.05,corrupt=0.02", 11).unwrap();
-    let summary = send_to_target(sim, &scenario, ingest, &plan, Pace::AsFastAsPossible, |_| {
-        Ok(())
-    })
+    let summary = send_to_target(
+        sim,
+        &scenario,
+        ingest,
+        &plan,
+        Pace::AsFastAsPossible,
+        |_| Ok(()),
+    )
     .await
     .unwrap();
     let faults = summary.faults.unwrap();
-    assert!(!faults.dropped.is_empty() && faults.duplicated > 0, "plan too mild");
+    assert!(
+        !faults.dropped.is_empty() && faults.duplicated > 0,
+        "plan too mild"
+    );
 
     // Wait (bounded by a count, not a clock) until the ingest has handed everything over.
     let mut text = String::new();
@@ -133,7 +141,10 @@ async fn simulated_nodes_to_records_with_metrics_and_feed() {
         }
         tokio::time::sleep(Duration::from_millis(50)).await;
     }
-    assert!(text.ends_with("# EOF\n"), "OpenMetrics text ends with # EOF");
+    assert!(
+        text.ends_with("# EOF\n"),
+        "OpenMetrics text ends with # EOF"
+    );
     for name in [
         "csgate_windows_reconstructed_total",
         "csgate_solve_duration_seconds_bucket",
@@ -264,9 +275,11 @@ fn serve_child_once(config: &Path, ingest: u16, scenario: &Scenario) -> std::pro
         assert!(up, "the child gateway never listened");
         let sim = Simulation::new(scenario, 1.0, false);
         let plan = parse_faults("none", 1).unwrap();
-        send_to_target(sim, scenario, addr, &plan, Pace::AsFastAsPossible, |_| Ok(()))
-            .await
-            .unwrap();
+        send_to_target(sim, scenario, addr, &plan, Pace::AsFastAsPossible, |_| {
+            Ok(())
+        })
+        .await
+        .unwrap();
     });
     // Common practice for daemons: SIGTERM asks for an orderly stop.
     let status = Command::new("kill")
@@ -335,25 +348,55 @@ fn check(dir: &Path, text: &str) -> (Option<i32>, String) {
         .arg(&path)
         .output()
         .unwrap();
-    (out.status.code(), String::from_utf8_lossy(&out.stderr).into_owned())
+    (
+        out.status.code(),
+        String::from_utf8_lossy(&out.stderr).into_owned(),
+    )
 }
 
 #[test]
 fn bad_configs_name_file_key_and_expectation() {
     let dir = test_dir();
     let cases: &[(&str, &[&str])] = &[
-        ("[ingest]\nlisten_addr = \"127.0.0.1:1\"\n", &["unknown key `ingest.listen_addr`"]),
-        ("[pipeline.solver]\nmax_iters = 5\n", &["unknown key `pipeline.solver.max_iters`"]),
+        (
+            "[ingest]\nlisten_addr = \"127.0.0.1:1\"\n",
+            &["unknown key `ingest.listen_addr`"],
+        ),
+        (
+            "[pipeline.solver]\nmax_iters = 5\n",
+            &["unknown key `pipeline.solver.max_iters`"],
+        ),
         ("colour = 1\n", &["unknown key `colour`"]),
-        ("[ingest]\nmax_connections = \"many\"\n", &["`ingest.max_connections`", "line 2", "expected"]),
-        ("[ingest]\nlisten = \"localhost\"\n", &["`ingest.listen`", "socket address"]),
+        (
+            "[ingest]\nmax_connections = \"many\"\n",
+            &["`ingest.max_connections`", "line 2", "expected"],
+        ),
+        (
+            "[ingest]\nlisten = \"localhost\"\n",
+            &["`ingest.listen`", "socket address"],
+        ),
         ("[http]\nlisten = \"127.0.0.1:99999\"\n", &["`http.listen`"]),
-        ("[[node]]\nid = 7\nkey = \"xyz\"\n", &["`node[0].key`", "hex"]),
-        ("[[node]]\nid = 7\nkey = \"abcd\"\n", &["`node[0].key`", "at least 16"]),
-        ("[[node]]\nid = 7\n[[node]]\nid = 7\n", &["`node[1].id`", "twice"]),
-        ("[pipeline]\nworkers = 0\n", &["`pipeline.workers`", "at least 1"]),
+        (
+            "[[node]]\nid = 7\nkey = \"xyz\"\n",
+            &["`node[0].key`", "hex"],
+        ),
+        (
+            "[[node]]\nid = 7\nkey = \"abcd\"\n",
+            &["`node[0].key`", "at least 16"],
+        ),
+        (
+            "[[node]]\nid = 7\n[[node]]\nid = 7\n",
+            &["`node[1].id`", "twice"],
+        ),
+        (
+            "[pipeline]\nworkers = 0\n",
+            &["`pipeline.workers`", "at least 1"],
+        ),
         ("[pipeline]\nbasis = \"haar\"\n", &["`pipeline.basis`"]),
-        ("[record]\ndeflate = 12\n", &["`record.deflate`", "0 (none) to 9"]),
+        (
+            "[record]\ndeflate = 12\n",
+            &["`record.deflate`", "0 (none) to 9"],
+        ),
         ("[log]\nformat = \"xml\"\n", &["`log.format`", "human"]),
         ("[ingest\n", &["not valid TOML", "line 1"]),
     ];
@@ -371,7 +414,10 @@ fn bad_configs_name_file_key_and_expectation() {
     std::fs::write(dir.path().join("plain-file"), b"").unwrap();
     let (code, err) = check(dir.path(), "[record]\nfolder = \"plain-file/records\"\n");
     assert_eq!(code, Some(2));
-    assert!(err.contains("`record.folder`") && err.contains("cannot create"), "{err}");
+    assert!(
+        err.contains("`record.folder`") && err.contains("cannot create"),
+        "{err}"
+    );
 
     // A record folder without write permission (skipped where permissions are not enforced,
     // e.g. when the tests run as root).
@@ -382,15 +428,19 @@ fn bad_configs_name_file_key_and_expectation() {
     if std::fs::write(ro.join("probe"), b"").is_err() {
         let (code, err) = check(dir.path(), "[record]\nfolder = \"read-only\"\n");
         assert_eq!(code, Some(2));
-        assert!(err.contains("`record.folder`") && err.contains("cannot create files"), "{err}");
+        assert!(
+            err.contains("`record.folder`") && err.contains("cannot create files"),
+            "{err}"
+        );
     }
     std::fs::set_permissions(&ro, std::fs::Permissions::from_mode(0o700)).unwrap();
 
     // The shipped example is valid.
     let shipped = Path::new(env!("CARGO_MANIFEST_DIR")).join("configs/gateway.toml");
-    let text = std::fs::read_to_string(&shipped)
-        .unwrap()
-        .replace("folder = \"records\"", &format!("folder = {:?}", dir.path().join("r")));
+    let text = std::fs::read_to_string(&shipped).unwrap().replace(
+        "folder = \"records\"",
+        &format!("folder = {:?}", dir.path().join("r")),
+    );
     let (code, err) = check(dir.path(), &text);
     assert_eq!(code, Some(0), "{err}");
 }

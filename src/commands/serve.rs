@@ -21,7 +21,12 @@ still waiting. A restart continues the record series in a new file."
 )]
 pub struct ServeArgs {
     /// The configuration file.
-    #[arg(long, short, value_name = "FILE.toml", required_unless_present = "print_defaults")]
+    #[arg(
+        long,
+        short,
+        value_name = "FILE.toml",
+        required_unless_present = "print_defaults"
+    )]
     pub config: Option<PathBuf>,
     /// Print every key with its default value as TOML and exit.
     #[arg(long)]

@@ -370,11 +370,16 @@ impl GatewayConfig {
                     };
                     return Err(ConfigError::UnknownKey { file, key });
                 }
+                let expected = if path.ends_with("listen") {
+                    format!("{message}; expected \"address:port\", e.g. \"127.0.0.1:7700\"")
+                } else {
+                    message
+                };
                 return Err(ConfigError::Value {
                     file,
                     line,
                     key: path,
-                    expected: message,
+                    expected,
                 });
             }
         };
@@ -410,16 +415,10 @@ impl GatewayConfig {
             }
         }
         if self.ingest.max_connections == 0 {
-            return Err(bad(
-                "ingest.max_connections",
-                "expected at least 1".into(),
-            ));
+            return Err(bad("ingest.max_connections", "expected at least 1".into()));
         }
         if self.ingest.channel_capacity == 0 {
-            return Err(bad(
-                "ingest.channel_capacity",
-                "expected at least 1".into(),
-            ));
+            return Err(bad("ingest.channel_capacity", "expected at least 1".into()));
         }
         if self.ingest.idle_timeout_ms == 0 {
             return Err(bad(
@@ -484,15 +483,14 @@ impl GatewayConfig {
             ));
         }
         if self.record.queue_capacity == 0 {
-            return Err(bad(
-                "record.queue_capacity",
-                "expected at least 1".into(),
-            ));
+            return Err(bad("record.queue_capacity", "expected at least 1".into()));
         }
         if self.http.feed_capacity == 0 {
             return Err(bad("http.feed_capacity", "expected at least 1".into()));
         }
-        if self.http.enabled && self.http.listen == self.ingest.listen && self.http.listen.port() != 0
+        if self.http.enabled
+            && self.http.listen == self.ingest.listen
+            && self.http.listen.port() != 0
         {
             return Err(bad(
                 "http.listen",
@@ -597,7 +595,7 @@ impl GatewayConfig {
         c.channel_capacity = r.queue_capacity;
         c.flush_interval = Duration::from_millis(r.flush_interval_ms);
         c.rotate_after = (r.rotate_after_s > 0).then(|| Duration::from_secs(r.rotate_after_s));
-        c.rotate_bytes = (r.rotate_mib > 0).then(|| r.rotate_mib << 20);
+        c.rotate_bytes = (r.rotate_mib > 0).then_some(r.rotate_mib << 20);
         c
     }
 

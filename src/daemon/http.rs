@@ -70,7 +70,12 @@ async fn health(State(s): State<Arc<HttpState>>) -> Response {
     } else {
         StatusCode::OK
     };
-    (code, [(header::CONTENT_TYPE, "application/json")], body.to_string()).into_response()
+    (
+        code,
+        [(header::CONTENT_TYPE, "application/json")],
+        body.to_string(),
+    )
+        .into_response()
 }
 
 async fn events(State(s): State<Arc<HttpState>>) -> Response {
@@ -82,29 +87,27 @@ async fn events(State(s): State<Arc<HttpState>>) -> Response {
     .unwrap_or_default();
     let stop = s.stop.clone();
     let first = Some(open);
-    let stream = futures::stream::unfold(
-        (rx, stop, first),
-        |(mut rx, stop, mut first)| async move {
+    let stream =
+        futures::stream::unfold((rx, stop, first), |(mut rx, stop, mut first)| async move {
             if let Some(line) = first.take() {
-                return Some((Ok::<Bytes, std::convert::Infallible>(line_bytes(&line)), (rx, stop, None)));
+                return Some((
+                    Ok::<Bytes, std::convert::Infallible>(line_bytes(&line)),
+                    (rx, stop, None),
+                ));
             }
-            loop {
-                let got = tokio::select! {
-                    _ = stop.cancelled() => return None,
-                    r = rx.recv() => r,
-                };
-                match got {
-                    Ok(line) => return Some((Ok(line_bytes(&line)), (rx, stop, None))),
-                    Err(RecvError::Lagged(missed)) => {
-                        let lag = serde_json::to_string(&GatewayEvent::FeedLag { missed })
-                            .unwrap_or_default();
-                        return Some((Ok(line_bytes(&lag)), (rx, stop, None)));
-                    }
-                    Err(RecvError::Closed) => return None,
-                }
-            }
-        },
-    );
+            let got = tokio::select! {
+                _ = stop.cancelled() => return None,
+                r = rx.recv() => r,
+            };
+            let line = match got {
+                Ok(line) => line_bytes(&line),
+                Err(RecvError::Lagged(missed)) => line_bytes(
+                    &serde_json::to_string(&GatewayEvent::FeedLag { missed }).unwrap_or_default(),
+                ),
+                Err(RecvError::Closed) => return None,
+            };
+            Some((Ok(line), (rx, stop, None)))
+        });
     (
         [
             (header::CONTENT_TYPE, "application/x-ndjson"),

@@ -371,7 +371,10 @@ impl GatewayMetrics {
         set(&g.connections_rejected, i.connections_rejected);
         set(&g.idle_timeouts, i.idle_timeouts);
         set(&g.frames_accepted, i.frames_accepted);
-        set(&g.frames_rejected.get_or_create(&reason("crc")), i.crc_errors);
+        set(
+            &g.frames_rejected.get_or_create(&reason("crc")),
+            i.crc_errors,
+        );
         set(
             &g.frames_rejected.get_or_create(&reason("decode")),
             i.decode_errors,
@@ -410,12 +413,16 @@ impl GatewayMetrics {
             .get_or_create(&queue("solver"))
             .set(s.solver_queue_capacity as i64);
         g.workers.set(s.workers as i64);
-        g.worker_busy
-            .inner()
-            .store((self.busy_us.load(Relaxed) as f64 * 1e-6).to_bits(), Relaxed);
+        g.worker_busy.inner().store(
+            (self.busy_us.load(Relaxed) as f64 * 1e-6).to_bits(),
+            Relaxed,
+        );
         set(&g.record_bytes, s.record_bytes.load(Relaxed));
         set(&g.feed_events, s.feed.published());
-        set(&g.discarded_at_shutdown, s.discarded_at_shutdown.load(Relaxed));
+        set(
+            &g.discarded_at_shutdown,
+            s.discarded_at_shutdown.load(Relaxed),
+        );
     }
 
     /// The OpenMetrics text of every metric (ends with `# EOF`).
@@ -427,13 +434,24 @@ impl GatewayMetrics {
     }
 
     /// Notes one reconstructed window's report.
-    pub fn note_window(&self, node: u32, channel: u16, residual: f64, iterations: u32, solve_us: f64) {
+    pub fn note_window(
+        &self,
+        node: u32,
+        channel: u16,
+        residual: f64,
+        iterations: u32,
+        solve_us: f64,
+    ) {
         let l = StreamLabels { node, channel };
         let s = &self.streams;
         s.windows.get_or_create(&l).inc();
         s.iterations.get_or_create(&l).inc_by(u64::from(iterations));
         s.residual.get_or_create(&l).set(residual);
-        let solve_us = if solve_us.is_finite() { solve_us.max(0.0) } else { 0.0 };
+        let solve_us = if solve_us.is_finite() {
+            solve_us.max(0.0)
+        } else {
+            0.0
+        };
         s.solve_time.get_or_create(&l).observe(solve_us * 1e-6);
         self.busy_us.fetch_add(solve_us.round() as u64, Relaxed);
     }
@@ -454,4 +472,5 @@ impl GatewayMetrics {
 }
 
 /// The `Content-Type` of [`GatewayMetrics::encode`]'s output.
-pub const OPENMETRICS_CONTENT_TYPE: &str = "application/openmetrics-text; version=1.0.0; charset=utf-8";
+pub const OPENMETRICS_CONTENT_TYPE: &str =
+    "application/openmetrics-text; version=1.0.0; charset=utf-8";

@@ -132,7 +132,10 @@ pub struct Gateway {
 impl Gateway {
     /// Binds the ingest and HTTP listeners of `config` (a checked configuration, see
     /// [`GatewayConfig::load`]). `config_digest` is written into every record file.
-    pub async fn bind(config: GatewayConfig, config_digest: String) -> Result<Gateway, DaemonError> {
+    pub async fn bind(
+        config: GatewayConfig,
+        config_digest: String,
+    ) -> Result<Gateway, DaemonError> {
         let ingest = TcpListener::bind(config.ingest.listen)
             .await
             .map_err(|source| DaemonError::Bind {
@@ -169,7 +172,9 @@ impl Gateway {
 
     /// The address nodes connect to.
     pub fn ingest_addr(&self) -> SocketAddr {
-        self.ingest.local_addr().expect("a bound listener has an address")
+        self.ingest
+            .local_addr()
+            .expect("a bound listener has an address")
     }
 
     /// The address of `/metrics`, `/health` and `/events`, if enabled.
@@ -221,7 +226,12 @@ impl Gateway {
 
         // Pipeline thread.
         let (pipe_tx, pipe_rx) = mpsc::channel::<Packet>(PIPELINE_FEED);
-        let pipe = pipeline::spawn(config.pipeline.clone(), pipe_rx, tap_tx, Arc::clone(&pipe_stats));
+        let pipe = pipeline::spawn(
+            config.pipeline.clone(),
+            pipe_rx,
+            tap_tx,
+            Arc::clone(&pipe_stats),
+        );
         let mut pipe_done = tokio::task::spawn_blocking(move || pipe.join());
 
         // Ingest and forwarder.
