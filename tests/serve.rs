@@ -154,6 +154,11 @@ async fn simulated_nodes_to_records_with_metrics_and_feed() {
     ] {
         assert!(text.contains(name), "{name} missing:\n{text}");
     }
+    // Per-stream duplicates and late windows add up to the gateway totals.
+    assert_eq!(
+        metric(&text, "csgate_stream_frames_dropped_total", None),
+        metric(&text, "csgate_frames_dropped_total", None)
+    );
     // Every frame the sender corrupted was refused at ingest, for some reason.
     let rejected = metric(&text, "csgate_frames_rejected_total", None);
     assert_eq!(rejected as usize, faults.corrupted.len(), "{text}");
@@ -463,9 +468,14 @@ async fn a_second_signal_shortens_the_drain_and_records_stay_complete() {
     let run = tokio::spawn(gateway.run(shutdown.clone()));
     let sim = Simulation::new(&scenario, 3.0, false);
     let plan = parse_faults("none", 1).unwrap();
-    let summary = send_to_target(sim, &scenario, ingest, &plan, Pace::AsFastAsPossible, |_| {
-        Ok(())
-    })
+    let summary = send_to_target(
+        sim,
+        &scenario,
+        ingest,
+        &plan,
+        Pace::AsFastAsPossible,
+        |_| Ok(()),
+    )
     .await
     .unwrap();
     shutdown.signal();

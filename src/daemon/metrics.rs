@@ -49,6 +49,17 @@ pub struct QueueLabels {
     pub queue: String,
 }
 
+/// Labels of a per-stream metric with a reason.
+#[derive(Debug, Clone, Hash, PartialEq, Eq, EncodeLabelSet)]
+pub struct StreamReasonLabels {
+    /// Node id.
+    pub node: u32,
+    /// Channel number.
+    pub channel: u16,
+    /// Why.
+    pub reason: String,
+}
+
 /// Labels of a band RMS value.
 #[derive(Debug, Clone, Hash, PartialEq, Eq, EncodeLabelSet)]
 pub struct BandLabels {
@@ -122,6 +133,7 @@ struct GatewayFigures {
     frames_accepted: Counter,
     frames_rejected: Family<ReasonLabels, Counter>,
     frames_dropped: Family<ReasonLabels, Counter>,
+    stream_frames_dropped: Family<StreamReasonLabels, Counter>,
     received_bytes: Counter,
     packets: Counter,
     windows_lost: Counter,
@@ -294,6 +306,11 @@ impl GatewayMetrics {
             "Windows dropped by the reorder buffers: late, duplicate",
             g.frames_dropped.clone(),
         );
+        r.register(
+            "stream_frames_dropped",
+            "Windows dropped by the reorder buffers, per stream: late, duplicate",
+            g.stream_frames_dropped.clone(),
+        );
         r.register_with_unit(
             "received",
             "Bytes of whole frames received",
@@ -395,6 +412,18 @@ impl GatewayMetrics {
             &g.frames_dropped.get_or_create(&reason("duplicate")),
             p.duplicates.load(Relaxed),
         );
+        if let Ok(v) = p.reorder_by_stream.lock() {
+            for &(id, dup, late) in v.iter() {
+                for (why, n) in [("duplicate", dup), ("late", late)] {
+                    let l = StreamReasonLabels {
+                        node: id.node,
+                        channel: id.channel,
+                        reason: why.into(),
+                    };
+                    set(&g.stream_frames_dropped.get_or_create(&l), n);
+                }
+            }
+        }
         set(&g.received_bytes, i.bytes);
         set(&g.packets, p.packets.load(Relaxed));
         set(&g.windows_lost, p.lost_windows.load(Relaxed));
