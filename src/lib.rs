@@ -23,6 +23,8 @@
 //! - [`store`]: HDF5 record files (behind the default-on `hdf5-store` feature).
 //! - [`pipeline`]: wiring of the stages, worker pool, shutdown.
 //! - [`features`]: spectra, peaks, machine fault frequencies, severity, trust.
+//! - [`daemon`]: the gateway daemon (`csgate serve`): configuration, metrics, event feed,
+//!   HTTP endpoint, shutdown (behind `hdf5-store`).
 //!
 //! ## Cargo features
 //! - `hdf5-store` (default): HDF5 records through the system libhdf5. Without it the rest of
@@ -31,6 +33,8 @@
 #![warn(missing_docs)]
 
 pub mod basis;
+#[cfg(feature = "hdf5-store")]
+pub mod daemon;
 pub mod features;
 pub mod packet;
 pub mod pipeline;

@@ -28,11 +28,16 @@ enum Command {
     Replay(commands::replay::ReplayArgs),
     /// Score a record against the simulator's ground truth (SNR per stream).
     Score(commands::score::ScoreArgs),
+    /// Run the gateway daemon from a TOML configuration (ingest, records, metrics, feeds).
+    Serve(commands::serve::ServeArgs),
 }
 
 fn main() -> ExitCode {
     let cli = Cli::parse();
-    init_logging();
+    // The daemon chooses its log format from its configuration.
+    if !matches!(cli.command, Command::Serve(_)) {
+        init_logging();
+    }
     let result = match cli.command {
         Command::Demo(args) => commands::demo::run(args),
         Command::Spectrum(args) => commands::spectrum::run(args),
@@ -40,6 +45,7 @@ fn main() -> ExitCode {
         Command::Simulate(args) => commands::simulate::run(args),
         Command::Replay(args) => commands::replay::run(args),
         Command::Score(args) => commands::score::run(args),
+        Command::Serve(args) => commands::serve::run(args),
     };
     match result {
         Ok(code) => code,

@@ -4,6 +4,9 @@ mod analytics;
 mod basis;
 mod features;
 mod pipeline;
+/// The gateway daemon: end to end over loopback, SIGTERM, restart, configuration errors.
+#[cfg(feature = "hdf5-store")]
+mod serve;
 mod sim;
 mod solver;
 mod store;

@@ -3,6 +3,7 @@
 pub mod demo;
 pub mod replay;
 pub mod score;
+pub mod serve;
 pub mod simulate;
 pub mod solve;
 pub mod spectrum;

@@ -160,6 +160,8 @@ pub struct PipelineStats {
     pub job_ns: AtomicU64,
     /// Counters of the analytics stage.
     pub analytics: Arc<AnalyticsStats>,
+    /// Per stream: (stream, duplicates, late), refreshed with the totals (for metrics).
+    pub reorder_by_stream: std::sync::Mutex<Vec<(StreamId, u64, u64)>>,
 }
 
 impl PipelineStats {
@@ -642,11 +644,16 @@ impl Dispatcher<'_> {
     fn sync_reorder_stats(&self) {
         let mut dup = 0;
         let mut late = 0;
+        let mut by_stream = Vec::new();
         for id in self.reorder.streams() {
             if let Some(st) = self.reorder.stats(id) {
                 dup += st.duplicates;
                 late += st.late;
+                by_stream.push((id, st.duplicates, st.late));
             }
+        }
+        if let Ok(mut v) = self.stats.reorder_by_stream.lock() {
+            *v = by_stream;
         }
         self.stats.duplicates.store(dup, Ordering::Relaxed);
         self.stats.late.store(late, Ordering::Relaxed);

@@ -43,6 +43,9 @@ pub struct SinkConfig {
     /// and keep no `index.json`. Every stream must be declared before the first data message;
     /// a stream declared later is an error. Default `None` (a rotating series).
     pub single_file: Option<String>,
+    /// Bytes of the files written so far (closed files plus the open one at its last flush),
+    /// updated at every flush and close, for live metrics. Default: a fresh counter.
+    pub live_bytes: std::sync::Arc<std::sync::atomic::AtomicU64>,
 }
 
 impl SinkConfig {
@@ -58,6 +61,7 @@ impl SinkConfig {
             rotate_after: Some(Duration::from_secs(3600)),
             rotate_bytes: Some(2 << 30),
             single_file: None,
+            live_bytes: Default::default(),
         }
     }
 }
@@ -513,6 +517,10 @@ impl SinkState {
     fn flush(&mut self) -> Result<(), StoreError> {
         if let Some(file) = &mut self.current {
             file.writer.flush()?;
+            let live = self.stats.bytes_written + file.writer.file_size();
+            self.config
+                .live_bytes
+                .store(live, std::sync::atomic::Ordering::Relaxed);
             self.update_index()?;
         }
         Ok(())
@@ -535,9 +543,15 @@ impl SinkState {
                 self.cursors.insert(key, cursor);
             }
         }
-        self.stats.bytes_written += file.writer.file_size();
         let entry = file.entry;
+        let path = file.writer.path().to_path_buf();
         file.writer.close(reason)?;
+        // The size after close includes the final attributes and flushed metadata.
+        self.stats.bytes_written += std::fs::metadata(&path).map(|m| m.len()).unwrap_or(0);
+        self.config.live_bytes.store(
+            self.stats.bytes_written,
+            std::sync::atomic::Ordering::Relaxed,
+        );
         let e = &mut self.index.files[entry];
         e.closed = Some(iso8601_utc(now_unix_ns()));
         e.close_reason = Some(

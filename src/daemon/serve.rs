@@ -1,0 +1,490 @@
+//! The running gateway: TCP ingest, the reconstruction pipeline, the record writer and the HTTP
+//! endpoint, joined and shut down in order.
+//!
+//! ```text
+//!  sockets ─► tcp::run ─(ingest.channel_capacity)─► forwarder ─(64)─► pipeline::run (thread)
+//!        ─(record.queue_capacity)─► record tap (thread: metrics, feed) ─► RecordSink (thread)
+//! ```
+//!
+//! tokio runs only the sockets, the forwarder and the HTTP endpoint; solving runs on the
+//! pipeline's worker pool and HDF5 on the writer thread. Every queue is bounded and every
+//! hand-off blocks when full, so slow workers stop the forwarder, then the socket readers, and
+//! TCP flow control reaches the nodes; `csgate_queue_depth` shows the lag.
+//!
+//! Shutdown ([`Shutdown`]): the first signal stops the listener and every connection (each
+//! finishes the frame in hand); the forwarder passes on what the sockets handed over, the
+//! pipeline reconstructs every complete window, flushes its reorder buffers (the rest becomes
+//! gaps) and finishes its stitchers, and the writer closes every file. A second signal, or the
+//! drain deadline, shortens this: the packets still waiting in the forwarder's queue are
+//! discarded (and counted); the windows already in the pipeline are still finished, so every
+//! record is closed complete. A restart opens the next file of the series; the sink never
+//! writes to an existing file.
+
+use super::config::GatewayConfig;
+use super::feed::{EventFeed, GatewayEvent};
+use super::http::{self, HttpState};
+use super::metrics::{GatewayMetrics, MetricSources};
+use crate::packet::Packet;
+use crate::pipeline::run::{self as pipeline, PipelineError, PipelineStats, PipelineSummary};
+use crate::sources::tcp::{self, IngestError, IngestSnapshot, IngestStats};
+use crate::store::{RecordMsg, RecordSink, SinkStats, StoreError};
+use serde::Serialize;
+use std::net::SocketAddr;
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering};
+use std::sync::Arc;
+use std::time::{Duration, Instant};
+use tokio::net::TcpListener;
+use tokio::sync::mpsc;
+use tokio_util::sync::CancellationToken;
+
+/// Capacity between the forwarder and the pipeline. Small: the real buffer is the ingest
+/// channel before the forwarder, whose contents a forced drain can still discard.
+const PIPELINE_FEED: usize = 64;
+
+/// Errors that stop the gateway.
+#[derive(Debug, thiserror::Error)]
+#[non_exhaustive]
+pub enum DaemonError {
+    /// A listener could not be bound.
+    #[error("cannot listen for {what} on {addr}: {source} (key {key})")]
+    Bind {
+        /// Which listener.
+        what: &'static str,
+        /// The configuration key naming the address.
+        key: &'static str,
+        /// The address.
+        addr: SocketAddr,
+        /// The OS error.
+        source: std::io::Error,
+    },
+    /// The ingest stopped.
+    #[error(transparent)]
+    Ingest(#[from] IngestError),
+    /// The pipeline stopped.
+    #[error(transparent)]
+    Pipeline(#[from] PipelineError),
+    /// The record writer stopped.
+    #[error(transparent)]
+    Store(#[from] StoreError),
+    /// A stage thread panicked.
+    #[error("the {0} stage panicked")]
+    Panicked(&'static str),
+}
+
+/// The shutdown switch: [`Shutdown::signal`] once to drain, twice to shorten the drain.
+#[derive(Debug, Clone, Default)]
+pub struct Shutdown {
+    drain: CancellationToken,
+    force: CancellationToken,
+}
+
+impl Shutdown {
+    /// A switch not yet thrown.
+    pub fn new() -> Self {
+        Self::default()
+    }
+
+    /// First call: begin the drain. Later calls: shorten it.
+    pub fn signal(&self) {
+        if self.drain.is_cancelled() {
+            self.force.cancel();
+        } else {
+            self.drain.cancel();
+        }
+    }
+
+    /// True once the drain has begun.
+    pub fn is_draining(&self) -> bool {
+        self.drain.is_cancelled()
+    }
+}
+
+/// What a finished run did.
+#[derive(Debug, Clone, Serialize)]
+pub struct ServeReport {
+    /// Ingest counters at the end.
+    pub ingest: IngestSnapshot,
+    /// Pipeline figures.
+    pub pipeline: PipelineSummary,
+    /// Record files created.
+    pub record_files: u64,
+    /// Bytes of record files written.
+    pub record_bytes: u64,
+    /// Packets discarded by a shortened drain.
+    pub discarded_packets: u64,
+    /// True if the drain was shortened (second signal or deadline).
+    pub forced: bool,
+    /// Seconds from the first signal to the end.
+    pub drain_s: f64,
+}
+
+/// A gateway with its listeners bound, ready to [`Gateway::run`].
+#[derive(Debug)]
+pub struct Gateway {
+    config: GatewayConfig,
+    config_digest: String,
+    ingest: TcpListener,
+    http: Option<TcpListener>,
+    feed: EventFeed,
+    metrics: Arc<GatewayMetrics>,
+}
+
+impl Gateway {
+    /// Binds the ingest and HTTP listeners of `config` (a checked configuration, see
+    /// [`GatewayConfig::load`]). `config_digest` is written into every record file.
+    pub async fn bind(
+        config: GatewayConfig,
+        config_digest: String,
+    ) -> Result<Gateway, DaemonError> {
+        let ingest = TcpListener::bind(config.ingest.listen)
+            .await
+            .map_err(|source| DaemonError::Bind {
+                what: "nodes",
+                key: "ingest.listen",
+                addr: config.ingest.listen,
+                source,
+            })?;
+        let http = if config.http.enabled {
+            Some(
+                TcpListener::bind(config.http.listen)
+                    .await
+                    .map_err(|source| DaemonError::Bind {
+                        what: "metrics and feeds",
+                        key: "http.listen",
+                        addr: config.http.listen,
+                        source,
+                    })?,
+            )
+        } else {
+            None
+        };
+        let feed = EventFeed::new(config.http.feed_capacity);
+        let metrics = Arc::new(GatewayMetrics::new(&config.site.name));
+        Ok(Gateway {
+            config,
+            config_digest,
+            ingest,
+            http,
+            feed,
+            metrics,
+        })
+    }
+
+    /// The address nodes connect to.
+    pub fn ingest_addr(&self) -> SocketAddr {
+        self.ingest
+            .local_addr()
+            .expect("a bound listener has an address")
+    }
+
+    /// The address of `/metrics`, `/health` and `/events`, if enabled.
+    pub fn http_addr(&self) -> Option<SocketAddr> {
+        self.http
+            .as_ref()
+            .map(|l| l.local_addr().expect("a bound listener has an address"))
+    }
+
+    /// The event feed: stages publish into it, `/events` readers receive.
+    pub fn feed(&self) -> EventFeed {
+        self.feed.clone()
+    }
+
+    /// The metrics (the analytics stage sets its hooks through them).
+    pub fn metrics(&self) -> Arc<GatewayMetrics> {
+        Arc::clone(&self.metrics)
+    }
+
+    /// Runs until `shutdown` is signalled and the drain is complete.
+    pub async fn run(self, shutdown: Shutdown) -> Result<ServeReport, DaemonError> {
+        let Gateway {
+            config,
+            config_digest,
+            ingest,
+            http,
+            feed,
+            metrics,
+        } = self;
+        let ingest_stats = Arc::new(IngestStats::default());
+        let pipe_stats = Arc::new(PipelineStats::default());
+        let packet_queue = Arc::new(AtomicU64::new(0));
+        let discarded = Arc::new(AtomicU64::new(0));
+        let draining = Arc::new(AtomicBool::new(false));
+
+        // Writer thread, behind the record tap.
+        let sink_config = config.sink_config(config_digest);
+        let record_bytes = Arc::clone(&sink_config.live_bytes);
+        let (sink, sink_handle) = RecordSink::spawn(sink_config);
+        let (tap_tx, tap_rx) = std::sync::mpsc::sync_channel(config.record.queue_capacity);
+        let tap = {
+            let metrics = Arc::clone(&metrics);
+            let feed = feed.clone();
+            std::thread::Builder::new()
+                .name("csgate-record-tap".into())
+                .spawn(move || record_tap(tap_rx, sink, &metrics, &feed))
+                .expect("spawn the record tap thread")
+        };
+
+        // Pipeline thread.
+        let (pipe_tx, pipe_rx) = mpsc::channel::<Packet>(PIPELINE_FEED);
+        let pipe = pipeline::spawn(
+            config.pipeline.clone(),
+            pipe_rx,
+            tap_tx,
+            Arc::clone(&pipe_stats),
+        );
+        let mut pipe_done = tokio::task::spawn_blocking(move || pipe.join());
+
+        // Ingest and forwarder.
+        let ingest_config = config.ingest_config();
+        let (ing_tx, ing_rx) = mpsc::channel::<Packet>(config.ingest.channel_capacity);
+        let drain_token = shutdown.drain.clone();
+        let mut ingest_task = tokio::spawn(tcp::run(
+            ingest,
+            ingest_config,
+            ing_tx,
+            Arc::clone(&ingest_stats),
+            async move { drain_token.cancelled().await },
+        ));
+        let forwarder = tokio::spawn(forward(
+            ing_rx,
+            pipe_tx,
+            shutdown.force.clone(),
+            Arc::clone(&packet_queue),
+            Arc::clone(&discarded),
+        ));
+
+        // HTTP.
+        let http_stop = CancellationToken::new();
+        let sources = MetricSources {
+            ingest: Arc::clone(&ingest_stats),
+            pipeline: Arc::clone(&pipe_stats),
+            record_bytes: Arc::clone(&record_bytes),
+            packet_queue: Arc::clone(&packet_queue),
+            packet_queue_capacity: config.ingest.channel_capacity,
+            solver_queue_capacity: config.pipeline.max_queued_windows,
+            workers: config.pipeline.workers,
+            discarded_at_shutdown: Arc::clone(&discarded),
+            feed: feed.clone(),
+        };
+        let http_task = http.map(|listener| {
+            let state = Arc::new(HttpState {
+                metrics: Arc::clone(&metrics),
+                sources,
+                feed: feed.clone(),
+                site: config.site.name.clone(),
+                started: Instant::now(),
+                draining: Arc::clone(&draining),
+                stop: http_stop.clone(),
+            });
+            let stop = http_stop.clone();
+            tokio::spawn(async move {
+                let served = axum::serve(listener, http::router(state))
+                    .with_graceful_shutdown(async move { stop.cancelled().await })
+                    .await;
+                if let Err(e) = served {
+                    tracing::error!(error = %e, "http endpoint failed");
+                }
+            })
+        });
+        tracing::info!(
+            site = %config.site.name,
+            ingest = %config.ingest.listen,
+            workers = config.pipeline.workers,
+            records = %config.record.folder.display(),
+            "gateway running"
+        );
+
+        // Run until a signal, or until a stage stops on its own (an error: start a shutdown).
+        let mut early_pipe = None;
+        let mut early_ingest = None;
+        tokio::select! {
+            _ = shutdown.drain.cancelled() => {}
+            r = &mut pipe_done => early_pipe = Some(r),
+            r = &mut ingest_task => early_ingest = Some(r),
+        }
+        if !shutdown.drain.is_cancelled() {
+            tracing::error!("a stage stopped on its own; shutting down");
+            shutdown.drain.cancel();
+        }
+        let drain_started = Instant::now();
+        draining.store(true, Ordering::Relaxed);
+        feed.publish(&GatewayEvent::ShuttingDown);
+        tracing::info!(
+            queued_packets = packet_queue.load(Ordering::Relaxed),
+            queued_windows = pipe_stats.queued.load(Ordering::Relaxed),
+            "shutdown: no longer accepting; draining (signal again to shorten)"
+        );
+        let deadline = {
+            let force = shutdown.force.clone();
+            let after = Duration::from_secs(config.shutdown.drain_timeout_s);
+            tokio::spawn(async move {
+                tokio::select! {
+                    _ = tokio::time::sleep(after) => {
+                        tracing::warn!(after_s = after.as_secs(), "drain deadline reached; discarding the packets still waiting");
+                        force.cancel();
+                    }
+                    _ = force.cancelled() => {}
+                }
+            })
+        };
+        let force_log = {
+            let force = shutdown.force.clone();
+            tokio::spawn(async move {
+                force.cancelled().await;
+                tracing::warn!("shortened drain: packets still waiting are discarded");
+            })
+        };
+
+        let ingest_result = match early_ingest {
+            Some(r) => r,
+            None => ingest_task.await,
+        };
+        let _ = forwarder.await;
+        let pipe_result = match early_pipe {
+            Some(r) => r,
+            None => {
+                // Name what is still running every few seconds while the pipeline drains.
+                loop {
+                    tokio::select! {
+                        r = &mut pipe_done => break r,
+                        _ = tokio::time::sleep(Duration::from_secs(5)) => tracing::info!(
+                            queued_windows = pipe_stats.queued.load(Ordering::Relaxed),
+                            "still draining: pipeline"
+                        ),
+                    }
+                }
+            }
+        };
+        let tap_result = tokio::task::spawn_blocking(move || tap.join()).await;
+        let sink_result = tokio::task::spawn_blocking(move || sink_handle.join()).await;
+        deadline.abort();
+        force_log.abort();
+        http_stop.cancel();
+        if let Some(h) = http_task {
+            let _ = h.await;
+        }
+
+        let sink_stats: SinkStats = match sink_result {
+            Ok(Ok(r)) => r?,
+            _ => return Err(DaemonError::Panicked("record writer")),
+        };
+        if !matches!(tap_result, Ok(Ok(()))) {
+            return Err(DaemonError::Panicked("record tap"));
+        }
+        let summary = match pipe_result {
+            Ok(Ok(r)) => r?,
+            _ => return Err(DaemonError::Panicked("pipeline")),
+        };
+        match ingest_result {
+            Ok(r) => r?,
+            Err(_) => return Err(DaemonError::Panicked("ingest")),
+        }
+        let report = ServeReport {
+            ingest: ingest_stats.snapshot(),
+            pipeline: summary,
+            record_files: sink_stats.files,
+            record_bytes: sink_stats.bytes_written,
+            discarded_packets: discarded.load(Ordering::Relaxed),
+            forced: shutdown.force.is_cancelled(),
+            drain_s: drain_started.elapsed().as_secs_f64(),
+        };
+        tracing::info!(
+            windows = report.pipeline.windows,
+            lost = report.pipeline.lost_windows,
+            files = report.record_files,
+            bytes = report.record_bytes,
+            discarded = report.discarded_packets,
+            "gateway stopped; every record closed"
+        );
+        Ok(report)
+    }
+}
+
+/// Passes packets from the sockets' channel to the pipeline's, keeping the lag gauge; on
+/// `force` it discards what is still waiting. Ends when the sockets' side closes.
+async fn forward(
+    mut rx: mpsc::Receiver<Packet>,
+    tx: mpsc::Sender<Packet>,
+    force: CancellationToken,
+    depth: Arc<AtomicU64>,
+    discarded: Arc<AtomicU64>,
+) {
+    loop {
+        let next = tokio::select! {
+            biased;
+            _ = force.cancelled() => break,
+            p = rx.recv() => p,
+        };
+        let Some(packet) = next else {
+            depth.store(0, Ordering::Relaxed);
+            return;
+        };
+        depth.store(rx.len() as u64, Ordering::Relaxed);
+        tokio::select! {
+            biased;
+            _ = force.cancelled() => {
+                discarded.fetch_add(1, Ordering::Relaxed);
+                break;
+            }
+            sent = tx.send(packet) => if sent.is_err() {
+                // The pipeline stopped; the caller reports why.
+                break;
+            },
+        }
+    }
+    // Forced or the pipeline is gone: discard what waits, refuse what comes.
+    drop(tx);
+    rx.close();
+    let mut n = 0;
+    while rx.recv().await.is_some() {
+        n += 1;
+    }
+    discarded.fetch_add(n, Ordering::Relaxed);
+    depth.store(0, Ordering::Relaxed);
+}
+
+/// The record tap: every record message passes here on its way to the writer thread, so
+/// per-stream metrics and feed events come from exactly what is recorded, without the
+/// pipeline knowing about either.
+fn record_tap(
+    rx: std::sync::mpsc::Receiver<RecordMsg>,
+    sink: RecordSink,
+    metrics: &GatewayMetrics,
+    feed: &EventFeed,
+) {
+    while let Ok(msg) = rx.recv() {
+        match &msg {
+            RecordMsg::Window { stream, row } => metrics.note_window(
+                stream.node,
+                stream.channel,
+                row.residual,
+                row.iterations,
+                row.solve_time_us,
+            ),
+            RecordMsg::Gap {
+                stream,
+                start,
+                len,
+                reason,
+            } => {
+                metrics.note_gap(stream.node, stream.channel, *len);
+                feed.publish(&GatewayEvent::Gap {
+                    node: stream.node,
+                    channel: stream.channel,
+                    start: *start,
+                    len: *len,
+                    reason: format!("{reason:?}"),
+                });
+            }
+            RecordMsg::Samples {
+                stream, samples, ..
+            } => metrics.note_samples(stream.node, stream.channel, samples.len() as u64),
+            _ => {}
+        }
+        if sink.send(msg).is_err() {
+            // The writer stopped (its error comes back through its join handle); dropping
+            // the receiver makes the pipeline stop too.
+            break;
+        }
+    }
+}
