@@ -23,6 +23,8 @@
 //! - [`store`]: HDF5 record files (behind the default-on `hdf5-store` feature).
 //! - [`pipeline`]: wiring of the stages, worker pool, shutdown.
 //! - [`features`]: spectra, peaks, machine fault frequencies, severity, trust.
+//! - [`bench`] (feature `hdf5-store`): the measurements of `csgate bench` (real-time capacity,
+//!   FISTA iteration against its transform floor, long replay memory, side-by-side window sets).
 //!
 //! ## Cargo features
 //! - `hdf5-store` (default): HDF5 records through the system libhdf5. Without it the rest of
@@ -31,6 +33,8 @@
 #![warn(missing_docs)]
 
 pub mod basis;
+#[cfg(feature = "hdf5-store")]
+pub mod bench;
 pub mod features;
 pub mod packet;
 pub mod pipeline;

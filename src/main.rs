@@ -28,6 +28,8 @@ enum Command {
     Replay(commands::replay::ReplayArgs),
     /// Score a record against the simulator's ground truth (SNR per stream).
     Score(commands::score::ScoreArgs),
+    /// Measure how many sensor channels this machine reconstructs in real time.
+    Bench(commands::bench::BenchArgs),
 }
 
 fn main() -> ExitCode {
@@ -40,6 +42,7 @@ fn main() -> ExitCode {
         Command::Simulate(args) => commands::simulate::run(args),
         Command::Replay(args) => commands::replay::run(args),
         Command::Score(args) => commands::score::run(args),
+        Command::Bench(args) => commands::bench::run(args),
     };
     match result {
         Ok(code) => code,
