@@ -1,6 +1,7 @@
 //! Integration tests: one binary, one module per area.
 
 mod basis;
+mod bench;
 mod features;
 mod pipeline;
 mod sim;
