@@ -6,7 +6,7 @@
 CARGO ?= cargo
 PY := .venv/bin/python
 
-.PHONY: demo test setup setup-python build lint rust-test python-test bench
+.PHONY: demo test setup setup-python build lint rust-test python-test bench bench-criterion
 
 # The demo site's node 104 signs its frames; its key is in configs/demo-site.toml.
 DEMO_KEY := 104=6b6579206f662051462d31303420666f722064656d6f
@@ -38,5 +38,18 @@ python-test:
 	$(CARGO) build --locked --release
 	CSGATE_BIN=$(CURDIR)/target/release/csgate $(PY) -m pytest -q tests/python
 
+# Side-by-side against numpy/scipy, pylops and scikit-learn (bench/python/), then this machine's
+# real-time capacity (`csgate bench`). A few minutes; not part of `make test`. BENCHMARKS.md has
+# the figures and the other benchmark commands.
 bench: setup-python
+	@if [ ! -f .venv/.bench-installed ] || [ bench/python/requirements.txt -nt .venv/.bench-installed ]; then \
+	  echo "bench: installing the Python reference libraries (bench/python/requirements.txt)"; \
+	  $(PY) -m pip install -q --disable-pip-version-check -r bench/python/requirements.txt && \
+	  touch .venv/.bench-installed; fi
+	$(CARGO) build --locked --release
+	$(PY) bench/python/side_by_side.py --csgate ./target/release/csgate
+	./target/release/csgate bench
+
+# The criterion benches (benches/*.rs); longer.
+bench-criterion:
 	$(CARGO) bench --locked

@@ -25,6 +25,8 @@
 //! - [`features`]: spectra, peaks, machine fault frequencies, severity, trust.
 //! - [`daemon`]: the gateway daemon (`csgate serve`): configuration, metrics, event feed,
 //!   HTTP endpoint, shutdown (behind `hdf5-store`).
+//! - [`bench`] (feature `hdf5-store`): the measurements of `csgate bench` (real-time capacity,
+//!   FISTA iteration against its transform floor, long replay memory, side-by-side window sets).
 //!
 //! ## Cargo features
 //! - `hdf5-store` (default): HDF5 records through the system libhdf5. Without it the rest of
@@ -35,6 +37,8 @@
 pub mod basis;
 #[cfg(feature = "hdf5-store")]
 pub mod daemon;
+#[cfg(feature = "hdf5-store")]
+pub mod bench;
 pub mod features;
 pub mod packet;
 pub mod pipeline;

@@ -30,6 +30,8 @@ enum Command {
     Score(commands::score::ScoreArgs),
     /// Run the gateway daemon from a TOML configuration (ingest, records, metrics, feeds).
     Serve(commands::serve::ServeArgs),
+    /// Measure how many sensor channels this machine reconstructs in real time.
+    Bench(commands::bench::BenchArgs),
 }
 
 fn main() -> ExitCode {
@@ -46,6 +48,7 @@ fn main() -> ExitCode {
         Command::Replay(args) => commands::replay::run(args),
         Command::Score(args) => commands::score::run(args),
         Command::Serve(args) => commands::serve::run(args),
+        Command::Bench(args) => commands::bench::run(args),
     };
     match result {
         Ok(code) => code,

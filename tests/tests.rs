@@ -2,6 +2,7 @@
 
 mod analytics;
 mod basis;
+mod bench;
 mod features;
 mod pipeline;
 /// The gateway daemon: end to end over loopback, SIGTERM, restart, configuration errors.

@@ -1,5 +1,6 @@
 //! One file per subcommand. Each exposes an `Args` struct (clap) and `run(args)`.
 
+pub mod bench;
 pub mod demo;
 pub mod replay;
 pub mod score;
