@@ -23,6 +23,7 @@
 //! - [`store`]: HDF5 record files (behind the default-on `hdf5-store` feature).
 //! - [`pipeline`]: wiring of the stages, worker pool, shutdown.
 //! - [`features`]: spectra, peaks, machine fault frequencies, severity, trust.
+//! - [`plan`]: sampling planner (samples per window from the L1 phase transition, payload).
 //!
 //! ## Cargo features
 //! - `hdf5-store` (default): HDF5 records through the system libhdf5. Without it the rest of
@@ -34,6 +35,7 @@ pub mod basis;
 pub mod features;
 pub mod packet;
 pub mod pipeline;
+pub mod plan;
 pub mod real;
 pub mod sim;
 pub mod solver;

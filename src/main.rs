@@ -28,6 +28,8 @@ enum Command {
     Replay(commands::replay::ReplayArgs),
     /// Score a record against the simulator's ground truth (SNR per stream).
     Score(commands::score::ScoreArgs),
+    /// Plan samples per window from the L1 phase transition, with the radio payload.
+    Plan(commands::plan::PlanArgs),
 }
 
 fn main() -> ExitCode {
@@ -40,6 +42,7 @@ fn main() -> ExitCode {
         Command::Simulate(args) => commands::simulate::run(args),
         Command::Replay(args) => commands::replay::run(args),
         Command::Score(args) => commands::score::run(args),
+        Command::Plan(args) => commands::plan::run(args),
     };
     match result {
         Ok(code) => code,

@@ -3,6 +3,7 @@
 mod basis;
 mod features;
 mod pipeline;
+mod plan;
 mod sim;
 mod solver;
 mod store;

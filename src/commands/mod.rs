@@ -1,6 +1,7 @@
 //! One file per subcommand. Each exposes an `Args` struct (clap) and `run(args)`.
 
 pub mod demo;
+pub mod plan;
 pub mod replay;
 pub mod score;
 pub mod simulate;
