@@ -349,7 +349,7 @@ fn encoding_costs(n: usize, m: usize, authenticated: bool, frames_per_s: f64) ->
             ("f32", RawValues::F32(vec![0.0; m])),
         ] {
             let packet = Packet {
-                header: header.clone(),
+                header,
                 index_coding: coding,
                 indices: indices.clone(),
                 values: vec![0.0; m],
