@@ -27,6 +27,7 @@
 //!   HTTP endpoint, shutdown (behind `hdf5-store`).
 //! - [`bench`] (feature `hdf5-store`): the measurements of `csgate bench` (real-time capacity,
 //!   FISTA iteration against its transform floor, long replay memory, side-by-side window sets).
+//! - [`plan`]: sampling planner (samples per window from the L1 phase transition, payload).
 //!
 //! ## Cargo features
 //! - `hdf5-store` (default): HDF5 records through the system libhdf5. Without it the rest of
@@ -42,6 +43,7 @@ pub mod bench;
 pub mod features;
 pub mod packet;
 pub mod pipeline;
+pub mod plan;
 pub mod real;
 pub mod sim;
 pub mod solver;

@@ -32,6 +32,8 @@ enum Command {
     Serve(commands::serve::ServeArgs),
     /// Measure how many sensor channels this machine reconstructs in real time.
     Bench(commands::bench::BenchArgs),
+    /// Plan samples per window from the L1 phase transition, with the radio payload.
+    Plan(commands::plan::PlanArgs),
 }
 
 fn main() -> ExitCode {
@@ -49,6 +51,7 @@ fn main() -> ExitCode {
         Command::Score(args) => commands::score::run(args),
         Command::Serve(args) => commands::serve::run(args),
         Command::Bench(args) => commands::bench::run(args),
+        Command::Plan(args) => commands::plan::run(args),
     };
     match result {
         Ok(code) => code,

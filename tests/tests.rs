@@ -8,6 +8,7 @@ mod pipeline;
 /// The gateway daemon: end to end over loopback, SIGTERM, restart, configuration errors.
 #[cfg(feature = "hdf5-store")]
 mod serve;
+mod plan;
 mod sim;
 mod solver;
 mod store;

@@ -2,6 +2,7 @@
 
 pub mod bench;
 pub mod demo;
+pub mod plan;
 pub mod replay;
 pub mod score;
 pub mod serve;
