@@ -37,9 +37,9 @@
 
 pub mod basis;
 #[cfg(feature = "hdf5-store")]
-pub mod daemon;
-#[cfg(feature = "hdf5-store")]
 pub mod bench;
+#[cfg(feature = "hdf5-store")]
+pub mod daemon;
 pub mod features;
 pub mod packet;
 pub mod pipeline;

@@ -444,7 +444,9 @@ pub fn fista<T: Real, O: LinearOperator<T> + ?Sized>(
             stable = 1;
             tried = false;
         }
-        let worth = sums.nnz > 0 && sums.nnz < m;
+        // CG on the restricted normal equations is quick only while `A_S` is well conditioned,
+        // i.e. `|S|` well below `m`.
+        let worth = sums.nnz > 0 && 2 * sums.nnz <= m;
         if options.subspace && worth && stable >= SUBSPACE_STABLE && !tried {
             tried = true;
             let budget = (options.max_iter - k).min(SUBSPACE_CG_STEPS);

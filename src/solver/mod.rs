@@ -1012,7 +1012,20 @@ fn support_warm_start<T: Real, O: LinearOperator<T> + ?Sized>(
     ws: &mut Workspace<T>,
 ) -> usize {
     let n = warm.len();
-    let d = settings.warm_dilate;
+    let rows = op.rows();
+    let carried = support_size(warm);
+    s.fill(T::zero());
+    // A least-squares fit needs far fewer columns than rows to be well posed; beyond half of m
+    // the carried support is mostly noise coefficients, and a cold start is better.
+    let limit = rows / 2;
+    if carried == 0 || carried > limit {
+        return 0;
+    }
+    let d = if carried * (2 * settings.warm_dilate + 1) <= limit {
+        settings.warm_dilate
+    } else {
+        0
+    };
     let mut mask = std::mem::take(&mut ws.trial);
     resize(&mut mask, n);
     for (i, _) in warm.iter().enumerate().filter(|(_, &v)| v != T::zero()) {
@@ -1020,7 +1033,6 @@ fn support_warm_start<T: Real, O: LinearOperator<T> + ?Sized>(
             *m = T::one();
         }
     }
-    s.fill(T::zero());
     let steps = if mask.iter().any(|&v| v != T::zero()) {
         debias(op, y, s, Some(&mask), settings.warm_refit_steps, 1e-6, ws).1
     } else {
