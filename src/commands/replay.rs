@@ -43,6 +43,14 @@ pub struct ReplayArgs {
     /// Start every window's solve from zero instead of from the previous window's solution.
     #[arg(long)]
     pub cold: bool,
+    /// Rounds of iterative reweighting of the L1 penalty after each window's LASSO solve
+    /// (weights 1 / (|s| + eps)); 0, the default, is plain L1. Costs about one more solve per
+    /// round; BENCHMARKS.md has the measured effect.
+    #[arg(long, value_name = "ROUNDS", default_value_t = 0)]
+    pub reweight: usize,
+    /// The eps of the reweighting, as a fraction of the window's largest coefficient.
+    #[arg(long, value_name = "FRACTION", default_value_t = 1.0)]
+    pub reweight_eps: f64,
     /// Deflate level 1-9 for the samples (default: none; noisy float data compresses little).
     #[arg(long, value_parser = clap::value_parser!(u8).range(1..=9))]
     pub deflate: Option<u8>,
@@ -101,6 +109,8 @@ pub fn run(args: ReplayArgs) -> anyhow::Result<ExitCode> {
         pipeline.warm_start = WarmStart::Cold;
     }
     pipeline.method = args.method;
+    pipeline.solver.reweight_rounds = args.reweight;
+    pipeline.solver.reweight_eps = args.reweight_eps;
     anyhow::ensure!(
         args.block_s.is_finite() && args.block_s > 0.0,
         "--block-s must be a positive number of seconds, got {}",

@@ -148,6 +148,14 @@ pub struct SolveSettings {
     /// a sign pattern for a few iterations, conjugate gradients solve the LASSO restricted to
     /// it. The result is the same LASSO solution (checked by the same duality gap).
     pub subspace: bool,
+    /// Rounds of iterative reweighting after the LASSO solve (E. Candes, M. Wakin & S. Boyd,
+    /// "Enhancing sparsity by reweighted l1 minimization", J. Fourier Anal. Appl. 14, 2008):
+    /// each round solves the weighted LASSO with weights `1 / (|s_i| + eps)`, `eps =
+    /// reweight_eps * max |s|`. Default 0 (off); see `BENCHMARKS.md` for the measurement.
+    pub reweight_rounds: usize,
+    /// `eps` of the weights as a fraction of the largest coefficient. Default 1.0, the best of
+    /// 0.1, 1 and 3 on the demo streams (`BENCHMARKS.md`).
+    pub reweight_eps: f64,
     /// Least-squares refit on the found support (default on): the L1 penalty shrinks every
     /// amplitude by about `lambda`, the refit removes that bias. KKT conditions hold for the
     /// LASSO solution, available as [`Solution::lasso_coefficients`], not for the refit.
@@ -187,6 +195,8 @@ impl Default for SolveSettings {
             max_iter: 3000,
             restart: true,
             subspace: true,
+            reweight_rounds: 0,
+            reweight_eps: 1.0,
             debias: true,
             debias_cg_steps: 10,
             debias_tol: 1e-4,
@@ -518,6 +528,12 @@ pub fn solve_with_operator<T: Real, O: LinearOperator<T> + ?Sized>(
                 }
             };
             run_lasso(op, y, lambda, lambda_max, &options, &mut s, &mut report, ws);
+            for _ in 0..settings.reweight_rounds {
+                if report.support == 0 {
+                    break;
+                }
+                reweight_round(op, y, lambda, settings, &options, &mut s, &mut report, ws);
+            }
         }
         Form::Constrained { eps } => {
             let eps = match eps {
@@ -624,6 +640,7 @@ fn check_settings(s: &SolveSettings) -> Result<(), SolveError> {
     };
     positive("gap_tol", s.gap_tol)?;
     positive("debias_tol", s.debias_tol)?;
+    positive("reweight_eps", s.reweight_eps)?;
     positive("eps_tol", s.eps_tol)?;
     positive("exact_tol", s.exact_tol)?;
     if !(s.change_tol.is_finite() && s.change_tol >= 0.0) {
@@ -724,6 +741,83 @@ fn run_lasso<T: Real, O: LinearOperator<T> + ?Sized>(
     report.stop = out.stop.into();
     report.converged = out.stop != FistaStop::IterationCap;
     out
+}
+
+/// `A W^{-1}`: the operator of the weighted LASSO in the variables `u = W s`. With every
+/// weight at least 1 the norm stays at most that of `A`, so FISTA's step is unchanged.
+struct Weighted<'a, T: Real, O: LinearOperator<T> + ?Sized> {
+    op: &'a mut O,
+    inv_w: &'a [T],
+    tmp: Vec<T>,
+}
+
+impl<T: Real, O: LinearOperator<T> + ?Sized> LinearOperator<T> for Weighted<'_, T, O> {
+    fn rows(&self) -> usize {
+        self.op.rows()
+    }
+    fn cols(&self) -> usize {
+        self.op.cols()
+    }
+    fn apply(&mut self, x: &[T], out: &mut [T]) {
+        for ((t, &xi), &iw) in self.tmp.iter_mut().zip(x).zip(self.inv_w) {
+            *t = xi * iw;
+        }
+        self.op.apply(&self.tmp, out);
+    }
+    fn adjoint(&mut self, y: &[T], out: &mut [T]) {
+        self.op.adjoint(y, out);
+        for (o, &iw) in out.iter_mut().zip(self.inv_w) {
+            *o *= iw;
+        }
+    }
+    fn lipschitz(&self) -> T {
+        self.op.lipschitz()
+    }
+    fn finest_detail_range(&self) -> std::ops::Range<usize> {
+        self.op.finest_detail_range()
+    }
+}
+
+/// One reweighting round (see [`SolveSettings::reweight_rounds`]): weights from `s`, normalised
+/// so the smallest is 1 (the largest coefficient keeps the plain penalty), the weighted LASSO
+/// at the same `lambda` warm-started from `W s`, and `s` mapped back.
+#[allow(clippy::too_many_arguments)]
+fn reweight_round<T: Real, O: LinearOperator<T> + ?Sized>(
+    op: &mut O,
+    y: &[T],
+    lambda: T,
+    settings: &SolveSettings,
+    options: &FistaOptions,
+    s: &mut [T],
+    report: &mut SolveReport,
+    ws: &mut Workspace<T>,
+) {
+    let n = s.len();
+    let top = s.iter().fold(T::zero(), |a, &v| a.max(v.abs()));
+    let eps = T::of(settings.reweight_eps) * top;
+    // inv_w = (|s| + eps) / (top + eps) <= 1, i.e. w normalised to min 1.
+    let inv_w: Vec<T> = s.iter().map(|&v| (v.abs() + eps) / (top + eps)).collect();
+    let mut u: Vec<T> = s.iter().zip(&inv_w).map(|(&v, &iw)| v / iw).collect();
+    let mut weighted = Weighted {
+        op,
+        inv_w: &inv_w,
+        tmp: vec![T::zero(); n],
+    };
+    let out = fista(&mut weighted, y, lambda, options, &mut u, &mut ws.fista);
+    report.iterations += out.iterations;
+    report.subspace_steps += out.subspace_steps;
+    report.fista_runs += 1;
+    report.objective = out.objective.to_f64_();
+    report.residual_norm = out.residual_norm.to_f64_();
+    report.lasso_residual_norm = report.residual_norm;
+    report.relative_residual = (out.residual_norm / norm2(y)).to_f64_();
+    report.relative_gap = out.relative_gap.to_f64_();
+    report.stop = out.stop.into();
+    report.converged = out.stop != FistaStop::IterationCap;
+    for ((si, &ui), &iw) in s.iter_mut().zip(&u).zip(&inv_w) {
+        *si = ui * iw;
+    }
+    report.support = support_size(s);
 }
 
 /// [`SigmaRule::Residual`]: LASSO rounds with `sigma` re-estimated from the debiased residual.
