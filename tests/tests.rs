@@ -5,10 +5,10 @@ mod basis;
 mod bench;
 mod features;
 mod pipeline;
+mod plan;
 /// The gateway daemon: end to end over loopback, SIGTERM, restart, configuration errors.
 #[cfg(feature = "hdf5-store")]
 mod serve;
-mod plan;
 mod sim;
 mod solver;
 mod store;
