@@ -137,8 +137,9 @@ fn stream_plots(
             &pts,
             &markers,
             rate / 2.0,
-            &format!("amplitude ({units})"),
+            &format!("amplitude (dB re 1 {units})"),
             "spectrum",
+            Scale::Db(100.0),
         )
         .map_err(plot_err(&path))?;
         out.push(path);
@@ -163,10 +164,23 @@ fn stream_plots(
                 x_max,
                 &format!("envelope amplitude ({units})"),
                 "envelope spectrum",
+                Scale::Linear,
             )
             .map_err(plot_err(&path))?;
             out.push(path);
         }
+    }
+
+    if let Some(grid) = spectrogram_grid(reader, key, total, rate)? {
+        let path = dir.join(format!("{prefix}-spectrogram.png"));
+        spectrogram_plot(
+            &path,
+            &format!("{title_key}: spectrogram across the record"),
+            &grid,
+            &units,
+        )
+        .map_err(plot_err(&path))?;
+        out.push(path);
     }
 
     let windows = reader.windows(key)?;
@@ -259,6 +273,8 @@ fn time_plot(path: &Path, title: &str, x: &[f64], rate: f64, units: &str) -> Res
     root.fill(&WHITE).map_err(e2s)?;
     let t_end_ms = (x.len().max(2) - 1) as f64 * 1e3 / rate;
     let (lo, hi) = range_of(x.iter().copied());
+    // Headroom for the legend.
+    let hi = hi + 0.25 * (hi - lo);
     let mut chart = ChartBuilder::on(&root)
         .caption(title, (FAMILY, 22))
         .margin(15)
@@ -286,12 +302,22 @@ fn time_plot(path: &Path, title: &str, x: &[f64], rate: f64, units: &str) -> Res
         .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 20, y)], BLUE));
     chart
         .configure_series_labels()
+        .position(SeriesLabelPosition::UpperRight)
         .background_style(WHITE.mix(0.85))
         .border_style(BLACK)
         .label_font((FAMILY, 15))
         .draw()
         .map_err(e2s)?;
     root.present().map_err(e2s)
+}
+
+/// Amplitude scale of a spectrum plot.
+#[derive(Clone, Copy, PartialEq)]
+enum Scale {
+    /// Linear, stream units.
+    Linear,
+    /// `20 log10(a / 1 unit)`, with this many dB shown below the largest value.
+    Db(f64),
 }
 
 #[allow(clippy::too_many_arguments)]
@@ -303,24 +329,48 @@ fn spectrum_plot(
     x_max: f64,
     y_desc: &str,
     series: &str,
+    scale: Scale,
 ) -> Result<(), String> {
     let root = BitMapBackend::new(path, SIZE).into_drawing_area();
     root.fill(&WHITE).map_err(e2s)?;
-    let shown: Vec<(f64, f64)> = pts.iter().copied().filter(|p| p.0 <= x_max).collect();
-    let y_top = shown
+    let to_y = |a: f64| match scale {
+        Scale::Linear => a,
+        Scale::Db(_) => 20.0 * a.max(1e-300).log10(),
+    };
+    let shown: Vec<(f64, f64)> = pts
+        .iter()
+        .filter(|p| p.0 <= x_max)
+        .map(|p| (p.0, to_y(p.1)))
+        .collect();
+    let in_view: Vec<(f64, f64, &str)> = markers
+        .iter()
+        .filter(|m| m.0 <= x_max)
+        .map(|m| (m.0, to_y(m.1), m.2.as_str()))
+        .collect();
+    let top = shown
         .iter()
         .map(|p| p.1)
-        .chain(markers.iter().filter(|m| m.0 <= x_max).map(|m| m.1))
+        .chain(in_view.iter().map(|m| m.1))
         .filter(|v| v.is_finite())
-        .fold(0.0, f64::max)
-        .max(1e-12)
-        * 1.15;
+        .fold(f64::NEG_INFINITY, f64::max);
+    let (y_lo, y_top) = match scale {
+        Scale::Linear => (0.0, top.max(1e-12) * 1.25),
+        Scale::Db(range) => {
+            let top = if top.is_finite() { top } else { 0.0 };
+            let floor = shown
+                .iter()
+                .map(|p| p.1)
+                .filter(|v| v.is_finite())
+                .fold(f64::INFINITY, f64::min);
+            ((top - range).max(floor.min(top - 10.0)), top + 0.2 * range)
+        }
+    };
     let mut chart = ChartBuilder::on(&root)
         .caption(title, (FAMILY, 20))
         .margin(15)
         .x_label_area_size(50)
         .y_label_area_size(90)
-        .build_cartesian_2d(0.0..x_max, 0.0..y_top)
+        .build_cartesian_2d(0.0..x_max, y_lo..y_top)
         .map_err(e2s)?;
     chart
         .configure_mesh()
@@ -330,17 +380,17 @@ fn spectrum_plot(
         .axis_desc_style((FAMILY, 17))
         .draw()
         .map_err(e2s)?;
+    let clipped = shown.into_iter().map(|(f, y)| (f, y.max(y_lo)));
     chart
-        .draw_series(LineSeries::new(shown, BLUE.stroke_width(1)))
+        .draw_series(LineSeries::new(clipped, BLUE.stroke_width(1)))
         .map_err(e2s)?
         .label(series)
         .legend(|(x, y)| PathElement::new(vec![(x, y), (x + 20, y)], BLUE));
-    let in_view: Vec<&(f64, f64, String)> = markers.iter().filter(|m| m.0 <= x_max).collect();
     if !in_view.is_empty() {
         let marker_colour = RED.mix(0.7);
         chart
             .draw_series(in_view.iter().map(|m| {
-                PathElement::new(vec![(m.0, 0.0), (m.0, m.1)], marker_colour.stroke_width(1))
+                PathElement::new(vec![(m.0, y_lo), (m.0, m.1)], marker_colour.stroke_width(1))
             }))
             .map_err(e2s)?
             .label("labelled peak (record's peaks rows)")
@@ -355,8 +405,8 @@ fn spectrum_plot(
         chart
             .draw_series(in_view.iter().map(|m| {
                 Text::new(
-                    m.2.clone(),
-                    (m.0, m.1 + 0.02 * y_top),
+                    m.2.to_string(),
+                    (m.0, m.1 + 0.02 * (y_top - y_lo)),
                     (FAMILY, 14).into_font().color(&RED),
                 )
             }))
@@ -383,7 +433,7 @@ fn trust_plot(path: &Path, title: &str, pts: &[(f64, f64, u8)]) -> Result<(), St
         .map(|p| p.1)
         .fold(limit, f64::max)
         .max(limit * 1.2)
-        * 1.1;
+        * 1.4;
     let mut chart = ChartBuilder::on(&root)
         .caption(title, (FAMILY, 22))
         .margin(15)
@@ -433,10 +483,185 @@ fn trust_plot(path: &Path, title: &str, pts: &[(f64, f64, u8)]) -> Result<(), St
     }
     chart
         .configure_series_labels()
+        .position(SeriesLabelPosition::UpperRight)
         .background_style(WHITE.mix(0.85))
         .border_style(BLACK)
         .label_font((FAMILY, 15))
         .draw()
+        .map_err(e2s)?;
+    root.present().map_err(e2s)
+}
+
+/// Frame length of the spectrogram (25 Hz bins at 25.6 kHz).
+const SPECTROGRAM_FRAME: usize = 1024;
+/// At most this many frames (columns) across the record, evenly spaced.
+const SPECTROGRAM_COLUMNS: u64 = 300;
+/// At most this many frequency rows (bins are merged by their maximum).
+const SPECTROGRAM_ROWS: usize = 256;
+/// Range of the colour scale below the largest value, dB.
+const SPECTROGRAM_RANGE_DB: f64 = 80.0;
+
+/// Spectrogram cells: per column its start (s) and the dB values of its rows.
+struct Grid {
+    col_s: f64,
+    columns: Vec<(f64, Option<Vec<f64>>)>,
+    row_hz: f64,
+    max_db: f64,
+}
+
+/// Hann-windowed frames spread over the whole stream, read one by one (a record of hours is
+/// never read whole); frames touching NaN (gaps) stay empty.
+fn spectrogram_grid(
+    reader: &RecordReader,
+    key: StreamKey,
+    total: u64,
+    rate: f64,
+) -> Result<Option<Grid>, InspectError> {
+    let n = SPECTROGRAM_FRAME;
+    if total < n as u64 * 2 {
+        return Ok(None);
+    }
+    let frames = total / n as u64;
+    let cols = frames.min(SPECTROGRAM_COLUMNS);
+    let step = (total - n as u64) / (cols - 1).max(1);
+    let mut planner = realfft::RealFftPlanner::<f64>::new();
+    let fft = planner.plan_fft_forward(n);
+    let window = crate::features::spectrum::hann_periodic(n);
+    let sum_w: f64 = window.iter().sum();
+    let bins = n / 2 + 1;
+    let merge = bins.div_ceil(SPECTROGRAM_ROWS);
+    let mut input = fft.make_input_vec();
+    let mut output = fft.make_output_vec();
+    let mut columns = Vec::with_capacity(cols as usize);
+    let mut max_db = f64::NEG_INFINITY;
+    for c in 0..cols {
+        let start = c * step;
+        let x = reader.samples_range(key, start, n as u64)?;
+        let t = start as f64 / rate;
+        if x.len() < n || x.iter().any(|v| !v.is_finite()) {
+            columns.push((t, None));
+            continue;
+        }
+        let mean = x.iter().map(|&v| f64::from(v)).sum::<f64>() / n as f64;
+        for ((d, &v), w) in input.iter_mut().zip(&x).zip(&window) {
+            *d = (f64::from(v) - mean) * w;
+        }
+        if fft.process(&mut input, &mut output).is_err() {
+            columns.push((t, None));
+            continue;
+        }
+        // Peak amplitude of a bin-centred tone: 2 |X_k| / sum(w) (common practice).
+        let rows: Vec<f64> = output
+            .chunks(merge)
+            .map(|chunk| {
+                let a = chunk.iter().map(|z| z.norm()).fold(0.0, f64::max) * 2.0 / sum_w;
+                20.0 * a.max(1e-300).log10()
+            })
+            .collect();
+        max_db = rows.iter().copied().fold(max_db, f64::max);
+        columns.push((t, Some(rows)));
+    }
+    if !max_db.is_finite() {
+        return Ok(None);
+    }
+    Ok(Some(Grid {
+        col_s: step as f64 / rate,
+        columns,
+        row_hz: merge as f64 * rate / n as f64,
+        max_db,
+    }))
+}
+
+/// Dark blue, teal, green, yellow: a sequential scale that stays readable in grey. Written
+/// out here because the plotters features in use leave out its colour maps.
+fn colour(v: f64) -> RGBColor {
+    const STOPS: [(f64, (f64, f64, f64)); 4] = [
+        (0.0, (20.0, 20.0, 80.0)),
+        (0.35, (30.0, 120.0, 160.0)),
+        (0.7, (60.0, 180.0, 110.0)),
+        (1.0, (245.0, 230.0, 60.0)),
+    ];
+    let v = v.clamp(0.0, 1.0);
+    let i = STOPS.iter().position(|s| s.0 >= v).unwrap_or(3).max(1);
+    let (a, b) = (STOPS[i - 1], STOPS[i]);
+    let f = (v - a.0) / (b.0 - a.0);
+    let mix = |x: f64, y: f64| (x + f * (y - x)).round() as u8;
+    RGBColor(
+        mix(a.1 .0, b.1 .0),
+        mix(a.1 .1, b.1 .1),
+        mix(a.1 .2, b.1 .2),
+    )
+}
+
+fn spectrogram_plot(path: &Path, title: &str, grid: &Grid, units: &str) -> Result<(), String> {
+    let root = BitMapBackend::new(path, SIZE).into_drawing_area();
+    root.fill(&WHITE).map_err(e2s)?;
+    let (main, bar) = root.split_horizontally(SIZE.0 - 130);
+    let lo = grid.max_db - SPECTROGRAM_RANGE_DB;
+    let t_end = grid.columns.last().map_or(1.0, |c| c.0) + grid.col_s;
+    let rows = grid
+        .columns
+        .iter()
+        .find_map(|c| c.1.as_ref().map(Vec::len))
+        .unwrap_or(1);
+    let f_end = rows as f64 * grid.row_hz;
+    let mut chart = ChartBuilder::on(&main)
+        .caption(title, (FAMILY, 22))
+        .margin(15)
+        .x_label_area_size(50)
+        .y_label_area_size(80)
+        .build_cartesian_2d(0.0..t_end, 0.0..f_end)
+        .map_err(e2s)?;
+    chart
+        .configure_mesh()
+        .disable_mesh()
+        .x_desc("time from the first sample (s; unfilled long gaps not shown)")
+        .y_desc("frequency (Hz)")
+        .label_style((FAMILY, 15))
+        .axis_desc_style((FAMILY, 17))
+        .draw()
+        .map_err(e2s)?;
+    for (t, col) in &grid.columns {
+        let Some(col) = col else { continue };
+        chart
+            .draw_series(col.iter().enumerate().map(|(r, &db)| {
+                let c = colour((db - lo) / SPECTROGRAM_RANGE_DB);
+                Rectangle::new(
+                    [
+                        (*t, r as f64 * grid.row_hz),
+                        (t + grid.col_s, (r + 1) as f64 * grid.row_hz),
+                    ],
+                    c.filled(),
+                )
+            }))
+            .map_err(e2s)?;
+    }
+    let mut scale = ChartBuilder::on(&bar)
+        .margin_top(50)
+        .margin_bottom(65)
+        .margin_right(10)
+        .y_label_area_size(70)
+        .build_cartesian_2d(0.0..1.0, lo..grid.max_db)
+        .map_err(e2s)?;
+    scale
+        .configure_mesh()
+        .disable_mesh()
+        .disable_x_axis()
+        .y_desc(format!("dB re 1 {units}"))
+        .label_style((FAMILY, 13))
+        .axis_desc_style((FAMILY, 15))
+        .draw()
+        .map_err(e2s)?;
+    let steps = 100;
+    scale
+        .draw_series((0..steps).map(|i| {
+            let a = lo + SPECTROGRAM_RANGE_DB * i as f64 / steps as f64;
+            let b = lo + SPECTROGRAM_RANGE_DB * (i + 1) as f64 / steps as f64;
+            Rectangle::new(
+                [(0.0, a), (1.0, b)],
+                colour(i as f64 / steps as f64).filled(),
+            )
+        }))
         .map_err(e2s)?;
     root.present().map_err(e2s)
 }
