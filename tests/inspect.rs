@@ -286,8 +286,10 @@ fn bad_input_exits_2_with_a_message() {
         .shape(4)
         .create("x")
         .unwrap();
+    let folder = dir.path().to_path_buf();
     for (path, expected) in [
         (&missing, "no such file"),
+        (&folder, "is a folder"),
         (&text, "not an HDF5 file"),
         (&other, "not a csgate record"),
     ] {

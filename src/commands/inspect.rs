@@ -17,7 +17,8 @@ severity{blocks, blocks_per_zone[unknown,A,B,C,D], worst_zone, last_zone, max_ve
 max_rms, low_trust_blocks},
 top_peaks[{label, source (direct|envelope), blocks, freq_hz, mean_amplitude, max_amplitude}]}.
 Figures not available are null. Plots (--plots DIR), per stream node<N>-ch<C>-: time.png,
-spectrum.png, envelope.png (when the record has an analysed block), trust.png.
+spectrum.png and envelope.png (of the last analysed block; left out when it holds NaN),
+spectrogram.png (records of at least 2048 samples), trust.png.
 Exit code 2 for a missing file, a file that is not HDF5 or not a csgate record.
 Severity zones and fault labels are indicative only.")]
 pub struct InspectArgs {

@@ -32,6 +32,9 @@ pub enum InspectError {
         #[source]
         source: std::io::Error,
     },
+    /// A folder was given.
+    #[error("{0}: is a folder; give one record file (.h5) of it, e.g. from its index.json")]
+    IsDir(PathBuf),
     /// No HDF5 signature where HDF5 puts it.
     #[error(
         "{0}: not an HDF5 file (no HDF5 signature at byte 0, 512, 1024, ...); expected a \
@@ -206,10 +209,11 @@ fn check_hdf5(path: &Path) -> Result<(), InspectError> {
         }
         Err(e) => return Err(io(e)),
     };
-    let len = file.metadata().map_err(io)?.len();
-    if file.metadata().map_err(io)?.is_dir() {
-        return Err(InspectError::NotHdf5(path.to_path_buf()));
+    let meta = file.metadata().map_err(io)?;
+    if meta.is_dir() {
+        return Err(InspectError::IsDir(path.to_path_buf()));
     }
+    let len = meta.len();
     let mut offset = 0u64;
     while offset + 8 <= len {
         use std::io::Seek;

@@ -3,9 +3,10 @@
 //!
 //! Per stream `node<N>-ch<C>-`: `time.png` (an excerpt of the samples), `spectrum.png`
 //! (Welch amplitude spectrum of the last analysed block with its labelled `peaks` rows marked),
-//! `envelope.png` (envelope spectrum of the same block, labelled envelope peaks marked) and
-//! `trust.png` (per-window `cv_error` over time, coloured by trust). The spectra are recomputed
-//! with the default feature settings ([`FeatureConfig::default`]); the record does not store
+//! `envelope.png` (envelope spectrum of the same block, labelled envelope peaks marked),
+//! `spectrogram.png` (frames spread over the whole stream) and `trust.png` (per-window
+//! `cv_error` over time, coloured by trust). The spectra are recomputed with the default
+//! feature settings ([`FeatureConfig::default`]); the record does not store
 //! the settings the analytics stage used, so the envelope band may differ from the one the
 //! markers came from.
 
@@ -200,13 +201,16 @@ fn stream_plots(
     Ok(out)
 }
 
+/// A frequency band (low, high), Hz.
+type Band = (f64, f64);
+
 /// The envelope spectrum of `block` as the analytics stage forms it with `cfg`: band by
 /// spectral kurtosis (or fixed), envelope of the analytic signal, Welch.
 fn envelope_spectrum(
     block: &[f64],
     rate: f64,
     cfg: &FeatureConfig,
-) -> Option<((f64, f64), Vec<(f64, f64)>)> {
+) -> Option<(Band, Vec<(f64, f64)>)> {
     let n = block.len();
     let mut real = realfft::RealFftPlanner::<f64>::new();
     let band = match cfg.envelope.band {
