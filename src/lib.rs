@@ -27,6 +27,7 @@
 //!   HTTP endpoint, shutdown (behind `hdf5-store`).
 //! - [`bench`] (feature `hdf5-store`): the measurements of `csgate bench` (real-time capacity,
 //!   FISTA iteration against its transform floor, long replay memory, side-by-side window sets).
+//! - [`inspect`] (feature `hdf5-store`): summary and PNG plots of a record (`csgate inspect`).
 //! - [`plan`]: sampling planner (samples per window from the L1 phase transition, payload).
 //!
 //! ## Cargo features
@@ -41,6 +42,8 @@ pub mod bench;
 #[cfg(feature = "hdf5-store")]
 pub mod daemon;
 pub mod features;
+#[cfg(feature = "hdf5-store")]
+pub mod inspect;
 pub mod packet;
 pub mod pipeline;
 pub mod plan;

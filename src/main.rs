@@ -34,6 +34,9 @@ enum Command {
     Bench(commands::bench::BenchArgs),
     /// Plan samples per window from the L1 phase transition, with the radio payload.
     Plan(commands::plan::PlanArgs),
+    /// Summarize a record file per stream (table or JSON) and write PNG plots.
+    #[cfg(feature = "hdf5-store")]
+    Inspect(commands::inspect::InspectArgs),
 }
 
 fn main() -> ExitCode {
@@ -52,6 +55,8 @@ fn main() -> ExitCode {
         Command::Serve(args) => commands::serve::run(args),
         Command::Bench(args) => commands::bench::run(args),
         Command::Plan(args) => commands::plan::run(args),
+        #[cfg(feature = "hdf5-store")]
+        Command::Inspect(args) => commands::inspect::run(args),
     };
     match result {
         Ok(code) => code,

@@ -4,6 +4,9 @@ mod analytics;
 mod basis;
 mod bench;
 mod features;
+/// `csgate inspect`: JSON summary, PNG plots, bad input.
+#[cfg(feature = "hdf5-store")]
+mod inspect;
 mod pipeline;
 mod plan;
 /// The gateway daemon: end to end over loopback, SIGTERM, restart, configuration errors.

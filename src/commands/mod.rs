@@ -2,6 +2,8 @@
 
 pub mod bench;
 pub mod demo;
+#[cfg(feature = "hdf5-store")]
+pub mod inspect;
 pub mod plan;
 pub mod replay;
 pub mod score;
