@@ -729,6 +729,12 @@ fn run_lasso<T: Real, O: LinearOperator<T> + ?Sized>(
         };
     }
     let out = fista(op, y, lambda, options, s, &mut ws.fista);
+    record_run(report, &out, y_norm, support_size(s));
+    out
+}
+
+/// Adds one FISTA run to the report: its cost, and the figures of its final iterate.
+fn record_run<T: Real>(report: &mut SolveReport, out: &FistaOutcome<T>, y_norm: T, support: usize) {
     report.iterations += out.iterations;
     report.subspace_steps += out.subspace_steps;
     report.fista_runs += 1;
@@ -736,11 +742,10 @@ fn run_lasso<T: Real, O: LinearOperator<T> + ?Sized>(
     report.residual_norm = out.residual_norm.to_f64_();
     report.lasso_residual_norm = report.residual_norm;
     report.relative_residual = (out.residual_norm / y_norm).to_f64_();
-    report.support = support_size(s);
+    report.support = support;
     report.relative_gap = out.relative_gap.to_f64_();
     report.stop = out.stop.into();
     report.converged = out.stop != FistaStop::IterationCap;
-    out
 }
 
 /// `A W^{-1}`: the operator of the weighted LASSO in the variables `u = W s`. With every
@@ -804,20 +809,10 @@ fn reweight_round<T: Real, O: LinearOperator<T> + ?Sized>(
         tmp: vec![T::zero(); n],
     };
     let out = fista(&mut weighted, y, lambda, options, &mut u, &mut ws.fista);
-    report.iterations += out.iterations;
-    report.subspace_steps += out.subspace_steps;
-    report.fista_runs += 1;
-    report.objective = out.objective.to_f64_();
-    report.residual_norm = out.residual_norm.to_f64_();
-    report.lasso_residual_norm = report.residual_norm;
-    report.relative_residual = (out.residual_norm / norm2(y)).to_f64_();
-    report.relative_gap = out.relative_gap.to_f64_();
-    report.stop = out.stop.into();
-    report.converged = out.stop != FistaStop::IterationCap;
     for ((si, &ui), &iw) in s.iter_mut().zip(&u).zip(&inv_w) {
         *si = ui * iw;
     }
-    report.support = support_size(s);
+    record_run(report, &out, norm2(y), support_size(s));
 }
 
 /// [`SigmaRule::Residual`]: LASSO rounds with `sigma` re-estimated from the debiased residual.
