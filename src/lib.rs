@@ -28,6 +28,8 @@
 //! - [`bench`] (feature `hdf5-store`): the measurements of `csgate bench` (real-time capacity,
 //!   FISTA iteration against its transform floor, long replay memory, side-by-side window sets).
 //! - [`inspect`] (feature `hdf5-store`): summary and PNG plots of a record (`csgate inspect`).
+//! - [`advice`]: sampling advice to nodes (samples per window from each stream's sparsity and
+//!   trust) and the board the ingest sends it from.
 //! - [`plan`]: sampling planner (samples per window from the L1 phase transition, payload).
 //!
 //! ## Cargo features
@@ -36,6 +38,7 @@
 #![forbid(unsafe_code)]
 #![warn(missing_docs)]
 
+pub mod advice;
 pub mod basis;
 #[cfg(feature = "hdf5-store")]
 pub mod bench;

@@ -40,6 +40,7 @@ fn enrol(config: &mut GatewayConfig, scenario: &Scenario) {
             id: n.id,
             name: n.name.clone(),
             key: n.auth_key.clone(),
+            advise: false,
         })
         .collect();
 }

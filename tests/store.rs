@@ -269,6 +269,7 @@ fn sink_rotates_for_a_late_stream_and_keeps_the_index() {
     sink.send(RecordMsg::Window {
         stream: a,
         row: window_row(1, 900),
+        effective_support: None,
     })
     .unwrap();
     sink.send(RecordMsg::Shutdown).unwrap();

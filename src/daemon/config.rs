@@ -117,6 +117,8 @@ pub struct GatewayConfig {
     pub log: LogSection,
     /// `[shutdown]`: drain on SIGINT/SIGTERM.
     pub shutdown: ShutdownSection,
+    /// `[advice]`: the sampling-advice rule for nodes with `advise = true`.
+    pub advice: crate::advice::AdviceConfig,
 }
 
 /// `[site]`.
@@ -201,6 +203,10 @@ pub struct NodeEntry {
     /// (and are refused when `ingest.require_auth` is set).
     #[serde(default)]
     pub key: Option<String>,
+    /// Send this node sampling advice (samples per window, wire format 5.2 message type 1)
+    /// computed from its streams' sparsity and trust. Default false.
+    #[serde(default)]
+    pub advise: bool,
 }
 
 /// `[record]`.
@@ -414,6 +420,18 @@ impl GatewayConfig {
                 })?;
             }
         }
+        if let Err(msg) = self.advice.check() {
+            let key = msg.split_whitespace().next().unwrap_or("advice").to_string();
+            return Err(bad(&key, msg));
+        }
+        if self.nodes.iter().any(|n| n.advise) && !self.pipeline.trust.enabled {
+            let i = self.nodes.iter().position(|n| n.advise).unwrap_or(0);
+            return Err(bad(
+                &format!("node[{i}].advise"),
+                "sampling advice needs the trust figures: set pipeline.trust.enabled = true"
+                    .into(),
+            ));
+        }
         if self.ingest.max_connections == 0 {
             return Err(bad("ingest.max_connections", "expected at least 1".into()));
         }
@@ -576,6 +594,12 @@ impl GatewayConfig {
             send_acks: s.send_acks,
             record_log: s.record_log.clone(),
         }
+    }
+
+    /// The advice board for the nodes with `advise = true`, if any.
+    pub fn advice_board(&self) -> Option<std::sync::Arc<crate::advice::AdviceBoard>> {
+        let nodes: Vec<u32> = self.nodes.iter().filter(|n| n.advise).map(|n| n.id).collect();
+        (!nodes.is_empty()).then(|| std::sync::Arc::new(crate::advice::AdviceBoard::new(nodes)))
     }
 
     /// The key ring (checked in [`GatewayConfig::from_toml_str`]).

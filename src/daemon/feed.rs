@@ -91,6 +91,23 @@ pub enum GatewayEvent {
         /// Why (the record's gap reason).
         reason: String,
     },
+    /// The sampling advice of a stream changed (sent to the node on its next window).
+    Advice {
+        /// Node id.
+        node: u32,
+        /// Channel.
+        channel: u16,
+        /// Sequence number of the window that caused it.
+        seq: u64,
+        /// Samples per window advised.
+        m: u32,
+        /// The advice before.
+        previous: u32,
+        /// Samples that window asked for.
+        need: u32,
+        /// Why: `sparsity`, `low_trust` or `release`.
+        reason: crate::advice::AdviceReason,
+    },
     /// The gateway began its shutdown drain.
     ShuttingDown,
 }

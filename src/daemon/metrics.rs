@@ -80,6 +80,8 @@ pub struct FaultLabels {
     pub channel: u16,
     /// Fault-frequency label, e.g. `BPFO` or `2x`.
     pub label: String,
+    /// `direct` or `envelope` spectrum.
+    pub spectrum: String,
 }
 
 type F64Gauge = Gauge<f64, AtomicU64>;
@@ -110,17 +112,24 @@ fn solve_time_histogram() -> Histogram {
     Histogram::new(exponential_buckets(1e-4, 2.0, 16))
 }
 
-/// Hooks for the analytics stage; empty until it sets them.
+/// Figures of the trust and analytics stages, set by the record tap from the rows it passes.
 #[derive(Debug, Default)]
 pub struct AnalyticsMetrics {
-    /// Trust of the last window, 0..1.
+    /// Trust of the last assessed window: 1 trusted, 0 low trust.
     pub trust: Family<StreamLabels, F64Gauge>,
+    /// Hold-out error of the last assessed window (relative RMS).
+    pub cv_error: Family<StreamLabels, F64Gauge>,
+    /// Samples per window advised to the node.
+    pub advised_m: Family<StreamLabels, Gauge>,
     /// Band RMS of the last block, in the stream's units.
     pub band_rms: Family<BandLabels, F64Gauge>,
     /// Velocity RMS of the last block, millimetres per second.
     pub velocity_rms_mm_s: Family<StreamLabels, F64Gauge>,
     /// Amplitude at a labelled fault frequency, in the stream's units.
     pub fault_amplitude: Family<FaultLabels, F64Gauge>,
+    /// Per stream: the block time and the labels of its last block's fault amplitudes (so a
+    /// label that no longer shows is removed rather than left stale).
+    fault_labels: std::sync::Mutex<std::collections::HashMap<StreamLabels, (i64, Vec<FaultLabels>)>>,
 }
 
 /// Gateway-wide figures, copied from the stages' atomics at each scrape.
@@ -130,6 +139,7 @@ struct GatewayFigures {
     connections_accepted: Counter,
     connections_rejected: Counter,
     idle_timeouts: Counter,
+    advice_sent: Counter,
     frames_accepted: Counter,
     frames_rejected: Family<ReasonLabels, Counter>,
     frames_dropped: Family<ReasonLabels, Counter>,
@@ -248,15 +258,25 @@ impl GatewayMetrics {
             streams.solve_time.clone(),
         );
         // Analytics hooks.
-        r.register_with_unit(
+        r.register(
             "window_trust",
-            "Trust of the last window, 0 to 1, per stream (set by the analytics stage)",
-            Unit::Ratios,
+            "Trust of the last assessed window, per stream: 1 trusted, 0 low trust",
             analytics.trust.clone(),
+        );
+        r.register_with_unit(
+            "window_cv_error",
+            "Hold-out (cross-validation) relative RMS error of the last assessed window, per stream",
+            Unit::Ratios,
+            analytics.cv_error.clone(),
+        );
+        r.register(
+            "advised_samples_per_window",
+            "Samples per window advised to the node (sampling advice), per stream",
+            analytics.advised_m.clone(),
         );
         r.register(
             "band_rms",
-            "Band RMS of the last block in the stream's units (set by the analytics stage)",
+            "RMS of the last feature block in the stream's units; band=\"full\" is the whole record band",
             analytics.band_rms.clone(),
         );
         r.register_with_unit(
@@ -267,7 +287,7 @@ impl GatewayMetrics {
         );
         r.register(
             "fault_frequency_amplitude",
-            "Amplitude at a labelled fault frequency in the stream's units (set by the analytics stage)",
+            "Amplitude of the last feature block's peaks at labelled fault frequencies, in the stream's units. Indicative only: it does not replace a qualified analyst, the machine maker's limits or local codes",
             analytics.fault_amplitude.clone(),
         );
         // Gateway.
@@ -285,6 +305,11 @@ impl GatewayMetrics {
             "connections_rejected",
             "Connections closed for a protocol fault (corrupt frame, failed authentication)",
             g.connections_rejected.clone(),
+        );
+        r.register(
+            "advice_messages_sent",
+            "Sampling-advice control frames sent to nodes",
+            g.advice_sent.clone(),
         );
         r.register(
             "idle_timeouts",
@@ -387,6 +412,7 @@ impl GatewayMetrics {
         set(&g.connections_accepted, i.connections_accepted);
         set(&g.connections_rejected, i.connections_rejected);
         set(&g.idle_timeouts, i.idle_timeouts);
+        set(&g.advice_sent, i.advice_sent);
         set(&g.frames_accepted, i.frames_accepted);
         set(
             &g.frames_rejected.get_or_create(&reason("crc")),
@@ -483,6 +509,76 @@ impl GatewayMetrics {
         };
         s.solve_time.get_or_create(&l).observe(solve_us * 1e-6);
         self.busy_us.fetch_add(solve_us.round() as u64, Relaxed);
+    }
+
+    /// Notes the trust figures of a window row (`trust` code of the record: 1 trusted, 2 low,
+    /// anything else not assessed).
+    pub fn note_trust(&self, node: u32, channel: u16, cv_error: f64, trust: u8) {
+        let l = StreamLabels { node, channel };
+        let a = &self.analytics;
+        match trust {
+            1 => a.trust.get_or_create(&l).set(1.0),
+            2 => a.trust.get_or_create(&l).set(0.0),
+            _ => return,
+        };
+        if cv_error.is_finite() {
+            a.cv_error.get_or_create(&l).set(cv_error);
+        }
+    }
+
+    /// Notes the sampling advice of a stream.
+    pub fn note_advice(&self, node: u32, channel: u16, m: u32) {
+        let l = StreamLabels { node, channel };
+        self.analytics.advised_m.get_or_create(&l).set(i64::from(m));
+    }
+
+    /// Notes a block's indicators.
+    pub fn note_indicators(&self, node: u32, channel: u16, row: &crate::features::IndicatorRow) {
+        let a = &self.analytics;
+        if row.rms.is_finite() {
+            let l = BandLabels {
+                node,
+                channel,
+                band: "full".into(),
+            };
+            a.band_rms.get_or_create(&l).set(row.rms);
+        }
+        if row.velocity_rms_mm_s.is_finite() {
+            let l = StreamLabels { node, channel };
+            a.velocity_rms_mm_s
+                .get_or_create(&l)
+                .set(row.velocity_rms_mm_s);
+        }
+    }
+
+    /// Notes a labelled peak; the labels of the stream's previous block are removed when the
+    /// first peak of a new block arrives.
+    pub fn note_peak(&self, node: u32, channel: u16, row: &crate::features::PeakRow) {
+        let label = row.label_str();
+        if label.is_empty() || !row.amplitude.is_finite() {
+            return;
+        }
+        let a = &self.analytics;
+        let l = FaultLabels {
+            node,
+            channel,
+            label: label.to_string(),
+            spectrum: if row.source == 1 { "envelope" } else { "direct" }.into(),
+        };
+        let mut seen = a.fault_labels.lock().unwrap_or_else(|e| e.into_inner());
+        let entry = seen
+            .entry(StreamLabels { node, channel })
+            .or_insert((row.t_unix_ns, Vec::new()));
+        if entry.0 != row.t_unix_ns {
+            for old in entry.1.drain(..) {
+                a.fault_amplitude.remove(&old);
+            }
+            entry.0 = row.t_unix_ns;
+        }
+        a.fault_amplitude.get_or_create(&l).set(row.amplitude);
+        if !entry.1.contains(&l) {
+            entry.1.push(l);
+        }
     }
 
     /// Notes a gap.

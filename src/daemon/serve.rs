@@ -24,7 +24,14 @@ use super::config::GatewayConfig;
 use super::feed::{EventFeed, GatewayEvent};
 use super::http::{self, HttpState};
 use super::metrics::{GatewayMetrics, MetricSources};
+use crate::advice::{AdviceBoard, AdviceConfig, Advisor, WindowObservation};
+use crate::features::FeatureEvent;
 use crate::packet::Packet;
+use crate::pipeline::events::{EventError, EventSink};
+use crate::pipeline::run::PipelineOutputs;
+use crate::store::layout::WindowRow;
+use crate::store::StreamKey;
+use std::collections::HashMap;
 use crate::pipeline::run::{self as pipeline, PipelineError, PipelineStats, PipelineSummary};
 use crate::sources::tcp::{self, IngestError, IngestSnapshot, IngestStats};
 use crate::store::{RecordMsg, RecordSink, SinkStats, StoreError};
@@ -215,22 +222,30 @@ impl Gateway {
         let record_bytes = Arc::clone(&sink_config.live_bytes);
         let (sink, sink_handle) = RecordSink::spawn(sink_config);
         let (tap_tx, tap_rx) = std::sync::mpsc::sync_channel(config.record.queue_capacity);
+        let board = config.advice_board();
         let tap = {
             let metrics = Arc::clone(&metrics);
             let feed = feed.clone();
+            let advice = board
+                .clone()
+                .map(|b| AdviceTap::new(b, config.advice.clone()));
             std::thread::Builder::new()
                 .name("csgate-record-tap".into())
-                .spawn(move || record_tap(tap_rx, sink, &metrics, &feed))
+                .spawn(move || record_tap(tap_rx, sink, &metrics, &feed, advice))
                 .expect("spawn the record tap thread")
         };
 
-        // Pipeline thread.
+        // Pipeline thread; the analytics stage's feature events go to the feed.
         let (pipe_tx, pipe_rx) = mpsc::channel::<Packet>(PIPELINE_FEED);
-        let pipe = pipeline::spawn(
+        let outputs = PipelineOutputs {
+            events: vec![Box::new(FeedSink(feed.clone()))],
+        };
+        let pipe = pipeline::spawn_with(
             config.pipeline.clone(),
             pipe_rx,
             tap_tx,
             Arc::clone(&pipe_stats),
+            outputs,
         );
         let mut pipe_done = tokio::task::spawn_blocking(move || pipe.join());
 
@@ -238,11 +253,12 @@ impl Gateway {
         let ingest_config = config.ingest_config();
         let (ing_tx, ing_rx) = mpsc::channel::<Packet>(config.ingest.channel_capacity);
         let drain_token = shutdown.drain.clone();
-        let mut ingest_task = tokio::spawn(tcp::run(
+        let mut ingest_task = tokio::spawn(tcp::run_advised(
             ingest,
             ingest_config,
             ing_tx,
             Arc::clone(&ingest_stats),
+            board,
             async move { drain_token.cancelled().await },
         ));
         let forwarder = tokio::spawn(forward(
@@ -443,6 +459,102 @@ async fn forward(
     depth.store(0, Ordering::Relaxed);
 }
 
+/// Publishes the analytics stage's feature events into the gateway's feed, each line tagged
+/// `"kind": "features"` like the gateway's own events (docs/events.md).
+struct FeedSink(EventFeed);
+
+#[derive(Serialize)]
+struct FeatureLine<'a> {
+    kind: &'static str,
+    #[serde(flatten)]
+    event: &'a FeatureEvent,
+}
+
+impl EventSink for FeedSink {
+    fn send(&mut self, event: &Arc<FeatureEvent>) -> Result<(), EventError> {
+        self.0.publish(&FeatureLine {
+            kind: "features",
+            event,
+        });
+        Ok(())
+    }
+
+    fn finish(&mut self) -> Result<(), EventError> {
+        Ok(())
+    }
+}
+
+/// The sampling advice of the opted-in nodes, computed in the record tap from the window
+/// rows on their way to the record and posted on the board the ingest sends from.
+struct AdviceTap {
+    board: Arc<AdviceBoard>,
+    config: AdviceConfig,
+    advisors: HashMap<StreamKey, Advisor>,
+}
+
+impl AdviceTap {
+    fn new(board: Arc<AdviceBoard>, config: AdviceConfig) -> Self {
+        Self {
+            board,
+            config,
+            advisors: HashMap::new(),
+        }
+    }
+
+    fn observe(
+        &mut self,
+        stream: StreamKey,
+        row: &WindowRow,
+        effective_support: Option<u32>,
+        metrics: &GatewayMetrics,
+        feed: &EventFeed,
+    ) {
+        if !self.board.advises(stream.node) {
+            return;
+        }
+        let advisor = self
+            .advisors
+            .entry(stream)
+            .or_insert_with(|| Advisor::new(self.config.clone()));
+        let obs = WindowObservation {
+            n: row.n,
+            m: row.m,
+            effective_support,
+            low_trust: match row.trust {
+                crate::store::layout::trust::OK => Some(false),
+                crate::store::layout::trust::LOW => Some(true),
+                _ => None,
+            },
+        };
+        let first = advisor.current().is_none();
+        let change = advisor.observe(&obs);
+        if first {
+            if let Some(m) = advisor.current() {
+                metrics.note_advice(stream.node, stream.channel, m);
+            }
+        }
+        let Some(a) = change else {
+            return;
+        };
+        let id = crate::packet::StreamId {
+            node: stream.node,
+            channel: stream.channel,
+        };
+        self.board.post(id, a.m);
+        metrics.note_advice(stream.node, stream.channel, a.m);
+        tracing::info!(stream = %id, m = a.m, previous = a.previous, reason = ?a.reason, "sampling advice");
+        feed.publish(&GatewayEvent::Advice {
+            node: stream.node,
+            channel: stream.channel,
+            seq: row.seq,
+            m: a.m,
+            previous: a.previous,
+            need: a.need,
+            reason: a.reason,
+        });
+    }
+}
+
 /// The record tap: every record message passes here on its way to the writer thread, so
 /// per-stream metrics and feed events come from exactly what is recorded, without the
 /// pipeline knowing about either.
@@ -451,16 +563,33 @@ fn record_tap(
     sink: RecordSink,
     metrics: &GatewayMetrics,
     feed: &EventFeed,
+    mut advice: Option<AdviceTap>,
 ) {
     while let Ok(msg) = rx.recv() {
         match &msg {
-            RecordMsg::Window { stream, row } => metrics.note_window(
-                stream.node,
-                stream.channel,
-                row.residual,
-                row.iterations,
-                row.solve_time_us,
-            ),
+            RecordMsg::Window {
+                stream,
+                row,
+                effective_support,
+            } => {
+                metrics.note_window(
+                    stream.node,
+                    stream.channel,
+                    row.residual,
+                    row.iterations,
+                    row.solve_time_us,
+                );
+                metrics.note_trust(stream.node, stream.channel, row.cv_error, row.trust);
+                if let Some(a) = advice.as_mut() {
+                    a.observe(*stream, row, *effective_support, metrics, feed);
+                }
+            }
+            RecordMsg::Peak { stream, row } => {
+                metrics.note_peak(stream.node, stream.channel, row);
+            }
+            RecordMsg::Indicator { stream, row } => {
+                metrics.note_indicators(stream.node, stream.channel, row);
+            }
             RecordMsg::Gap {
                 stream,
                 start,

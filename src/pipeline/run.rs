@@ -827,7 +827,11 @@ impl Dispatcher<'_> {
                     cv_error,
                     trust: trust_code,
                 };
-                self.send(RecordMsg::Window { stream: key, row })?;
+                self.send(RecordMsg::Window {
+                    stream: key,
+                    row,
+                    effective_support: r.trust.as_ref().map(|t| t.effective_support as u32),
+                })?;
                 let items = match self.slots[s].stitcher.as_mut() {
                     Some(st) => st.push_window(r.start, &signal),
                     None => Ok(Vec::new()),

@@ -13,7 +13,8 @@
 
 use super::config::IngestConfig;
 use crate::packet::codec::{CodecError, FrameCodec, RawFrame};
-use crate::packet::{wire, Ack, AuthError, DecodeError, Frame, KeyRing, Packet};
+use crate::advice::AdviceBoard;
+use crate::packet::{wire, Ack, AuthError, Control, DecodeError, Frame, KeyRing, Packet, StreamId};
 use bytes::BytesMut;
 use futures::{SinkExt, StreamExt};
 use serde::Serialize;
@@ -75,6 +76,8 @@ pub struct IngestStats {
     pub auth_failures: AtomicU64,
     /// Connections closed for idleness.
     pub idle_timeouts: AtomicU64,
+    /// Sampling-advice control frames sent to nodes.
+    pub advice_sent: AtomicU64,
 }
 
 /// A copy of the counters at one moment.
@@ -91,6 +94,7 @@ pub struct IngestSnapshot {
     pub validation_errors: u64,
     pub auth_failures: u64,
     pub idle_timeouts: u64,
+    pub advice_sent: u64,
 }
 
 impl IngestStats {
@@ -107,6 +111,7 @@ impl IngestStats {
             validation_errors: self.validation_errors.load(Relaxed),
             auth_failures: self.auth_failures.load(Relaxed),
             idle_timeouts: self.idle_timeouts.load(Relaxed),
+            advice_sent: self.advice_sent.load(Relaxed),
         }
     }
 }
@@ -131,6 +136,8 @@ struct Shared {
     stats: Arc<IngestStats>,
     /// Frames to record, with their receive time (microseconds since the epoch).
     recorder: Option<mpsc::Sender<(i64, bytes::Bytes)>>,
+    /// Sampling advice to send to the nodes that asked for it.
+    advice: Option<Arc<AdviceBoard>>,
 }
 
 /// The recording thread's input and its join handle.
@@ -167,6 +174,21 @@ pub async fn run(
     stats: Arc<IngestStats>,
     shutdown: impl Future<Output = ()>,
 ) -> Result<(), IngestError> {
+    run_advised(listener, config, tx, stats, None, shutdown).await
+}
+
+/// [`run`], also sending the sampling advice of `advice` to the nodes it names: after a window
+/// of such a node is accepted (and acknowledged), each stream seen on the connection whose
+/// advice differs from what the connection last sent gets a control frame (wire format 5.2,
+/// message type 1), signed with the node's key when it is enrolled.
+pub async fn run_advised(
+    listener: TcpListener,
+    config: IngestConfig,
+    tx: mpsc::Sender<Packet>,
+    stats: Arc<IngestStats>,
+    advice: Option<Arc<AdviceBoard>>,
+    shutdown: impl Future<Output = ()>,
+) -> Result<(), IngestError> {
     let keys = config.key_ring()?;
     let (recorder, recorder_handle) = match &config.record_log {
         Some(path) => {
@@ -181,6 +203,7 @@ pub async fn run(
         keys,
         stats,
         recorder,
+        advice,
     });
     let cancel = CancellationToken::new();
     let mut tasks = JoinSet::new();
@@ -252,6 +275,10 @@ async fn connection(
     let idle = shared.config.idle_timeout();
     let limits = &shared.config.limits;
     let mut framed = Framed::new(socket, FrameCodec::new(limits.max_frame_len));
+    // Advice state of this connection: the board's version last looked at, the streams seen
+    // and the advice last sent for each.
+    let mut advice_seen = 0u64;
+    let mut advised: Vec<(StreamId, Option<u32>)> = Vec::new();
     loop {
         let next = tokio::select! {
             _ = cancel.cancelled() => break,
@@ -341,5 +368,57 @@ async fn connection(
                 }
             }
         }
+        if let Some(board) = shared.advice.as_deref().filter(|b| b.advises(ack.stream.node)) {
+            if !advised.iter().any(|(s, _)| *s == ack.stream) {
+                advised.push((ack.stream, None));
+                advice_seen = advice_seen.wrapping_sub(1); // look again for the new stream
+            }
+            let version = board.version();
+            if version != advice_seen {
+                advice_seen = version;
+                if let Err(e) = send_advice(&mut framed, board, &mut advised, shared, idle).await {
+                    tracing::info!(%peer, error = %e, "cannot send sampling advice, closing");
+                    break;
+                }
+            }
+        }
     }
+}
+
+/// Sends a control frame for every stream of `advised` whose advice on `board` changed.
+async fn send_advice(
+    framed: &mut Framed<TcpStream, FrameCodec>,
+    board: &AdviceBoard,
+    advised: &mut [(StreamId, Option<u32>)],
+    shared: &Shared,
+    idle: Duration,
+) -> Result<(), CodecError> {
+    for (stream, sent) in advised.iter_mut() {
+        let Some(m) = board.get(*stream) else {
+            continue;
+        };
+        if *sent == Some(m) {
+            continue;
+        }
+        let mut buf = BytesMut::with_capacity(64);
+        wire::encode_control(
+            &Control::sampling_advice(*stream, m),
+            shared.keys.get(stream.node),
+            &mut buf,
+        )
+        .expect("an advice message is far below every size limit");
+        match tokio::time::timeout(idle, framed.send(RawFrame::from_trusted(buf.freeze()))).await {
+            Ok(r) => r?,
+            Err(_) => {
+                return Err(CodecError::Io(std::io::Error::new(
+                    std::io::ErrorKind::TimedOut,
+                    "node does not read",
+                )))
+            }
+        }
+        inc(&shared.stats.advice_sent);
+        tracing::debug!(%stream, m, "sampling advice sent");
+        *sent = Some(m);
+    }
+    Ok(())
 }

@@ -88,6 +88,9 @@ pub enum RecordMsg {
         stream: StreamKey,
         /// The row (`start_sample` is a grid position).
         row: WindowRow,
+        /// Effective support of the solution when the trust figures were computed. Not
+        /// recorded; the gateway's sampling advice reads it on the way ([`crate::advice`]).
+        effective_support: Option<u32>,
     },
     /// Samples no window covers.
     Gap {
