@@ -1,5 +1,8 @@
 //! Integration tests: one binary, one module per area.
 
+/// Sampling advice to nodes, end to end over loopback.
+#[cfg(feature = "hdf5-store")]
+mod advice;
 mod analytics;
 mod basis;
 mod bench;

@@ -286,6 +286,10 @@ pub struct ChangeSpec {
     /// Factor on the broadband noise level from `at_s` on (a broadening spectrum).
     #[serde(default = "one")]
     pub broadband_factor: f64,
+    /// Shaft harmonics that appear from `at_s` on, added to the machine's own (e.g. the
+    /// train of harmonics of a loosening mounting): the spectrum becomes less sparse.
+    #[serde(default)]
+    pub harmonics: Vec<Harmonic>,
 }
 
 fn one() -> f64 {
@@ -449,6 +453,12 @@ impl MachineSpec {
             }
             check_amplitude("change.harmonic_factor", c.harmonic_factor)?;
             check_amplitude("change.broadband_factor", c.broadband_factor)?;
+            for (i, h) in c.harmonics.iter().enumerate() {
+                if h.order == 0 {
+                    return Err(format!("change.harmonics[{i}].order: must be at least 1"));
+                }
+                check_amplitude(&format!("change.harmonics[{i}].amplitude"), h.amplitude)?;
+            }
         }
         Ok(())
     }
@@ -778,6 +788,7 @@ impl MachineSynth {
         self.changed = true;
         self.harmonic_factor = c.harmonic_factor;
         self.broadband_factor = c.broadband_factor;
+        self.spec.harmonics.extend(c.harmonics.iter().cloned());
         if let (Some(d), Some(b)) = (c.defect, self.spec.bearing) {
             self.defect = Some(ActiveDefect::new(d, &b.geometry(), self.sample_rate_hz));
             if self.next_impact_s.is_none() {

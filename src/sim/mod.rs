@@ -41,6 +41,7 @@
 //! assert_eq!(sim.remaining(), 14); // (8192 - 1024) / 512 + 1 = 15 windows in 1 s, 1 taken
 //! ```
 
+pub mod advised;
 pub mod machine;
 pub mod run;
 pub mod scenario;

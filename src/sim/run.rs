@@ -134,6 +134,8 @@ pub struct NodeSim {
     keep_truth: bool,
     index_rng: ChaCha8Rng,
     noise_rng: ChaCha8Rng,
+    /// Samples per window when set (sampling advice); else the scenario's ratio.
+    m_override: Option<u32>,
 }
 
 impl NodeSim {
@@ -176,12 +178,24 @@ impl NodeSim {
             keep_truth,
             index_rng: stream_rng(1),
             noise_rng: stream_rng(2),
+            m_override: None,
         }
     }
 
     /// The node's scenario entry.
     pub fn spec(&self) -> &NodeSpec {
         &self.spec
+    }
+
+    /// Samples per window of the next window.
+    pub fn sample_count(&self) -> u32 {
+        self.m_override.unwrap_or_else(|| self.spec.sample_count())
+    }
+
+    /// Sends `m` samples per window from the next window on (clamped to `1..=n`), as a node
+    /// does when it follows the gateway's sampling advice.
+    pub fn set_sample_count(&mut self, m: u32) {
+        self.m_override = Some(m.clamp(1, self.spec.window_len));
     }
 
     /// The capture id every frame of this run carries.
@@ -238,7 +252,7 @@ impl NodeSim {
         }
         let start = self.seq * hop as u64;
         let t0_us = self.instant_us(start);
-        let m = self.spec.sample_count();
+        let m = self.sample_count();
         let mut packets = Vec::with_capacity(self.channels.len());
         let mut clipped = 0;
         // One index set per window, shared by the node's channels: one ADC scan samples every
