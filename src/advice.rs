@@ -346,7 +346,7 @@ mod tests {
         let r = a.observe(&obs(1024, 20, false)).expect("a release");
         assert_eq!(r.reason, AdviceReason::Release);
         assert_eq!(r.m, 880); // ceil(1024 * 0.85) = 871 -> 880
-        // A denser window lifts it at once.
+                              // A denser window lifts it at once.
         let up = a.observe(&obs(880, 205, false)).expect("an attack");
         assert_eq!((up.m, up.reason), (1264, AdviceReason::Sparsity));
         // A low-trust window too.

@@ -153,13 +153,20 @@ async fn advice_rises_when_the_machine_changes_and_settles_on_a_steady_one() {
     let (fan, pump) = (&nodes[0], &nodes[1]);
     let windows = fan.m_per_window.len();
     assert_eq!(rows[0].len(), windows, "every fan window is in the record");
-    assert_eq!(rows[1].len(), pump.m_per_window.len(), "every pump window too");
+    assert_eq!(
+        rows[1].len(),
+        pump.m_per_window.len(),
+        "every pump window too"
+    );
     // The record's m is what the node sent.
     for (r, m) in rows[1].iter().zip(&pump.m_per_window) {
         assert_eq!(r.m, *m, "window {}", r.seq);
     }
     assert!(fan.advice_received > 0 && pump.advice_received > 0);
-    assert_eq!(fan.advice_ignored, 0, "signed advice to the enrolled fan verifies");
+    assert_eq!(
+        fan.advice_ignored, 0,
+        "signed advice to the enrolled fan verifies"
+    );
 
     let trusted = |rows: &[csgate::store::layout::WindowRow]| {
         rows.iter().filter(|r| r.trust == trust::OK).count() as f64 / rows.len().max(1) as f64
@@ -181,7 +188,10 @@ async fn advice_rises_when_the_machine_changes_and_settles_on_a_steady_one() {
         f64::from(fan_end) < 0.6 * f64::from(fan_start),
         "steady machine: {fan_start} -> {fan_end}"
     );
-    assert!(trusted(fan_tail) >= 0.9, "the lower m keeps the windows trusted");
+    assert!(
+        trusted(fan_tail) >= 0.9,
+        "the lower m keeps the windows trusted"
+    );
 
     // Pump: before the change the advice falls; after it, it rises to at least twice that
     // level, and the windows are trusted again once the node follows it.

@@ -34,6 +34,11 @@ const V2: &str = "c5534757640000000101060009000000000004100100000000000000000000
 const V3: &str = "c553475770000000010109000b000000020002104d000000e803000000000000000000000088c340200000001000000000144f18240a0600000000000000103f080000000400000021c210880100020003000400fffffefffdfffcff7c204f7f115bb1a941f4ba05c76a15751bd05bdf";
 // Vector 4: acknowledgement of vector 1's window.
 const V4: &str = "c5534757240000000102000007000000010000000d0c0b0a0300000000000000c5dc453f";
+// Vector 5: sampling advice to node 7, channel 1: 512 samples per window.
+const V5: &str = "c55347571e000000010300000700000001000100010400020000445a18e2";
+// Vector 6: sampling advice to node 11, channel 2: 384, authenticated with key 00 01 .. 0f.
+const V6: &str =
+    "c55347572e000000010308000b000000020001000104800100008030d053e6bf597a98342aba4e1ecf857160045a";
 
 fn window(bytes: &[u8]) -> Packet {
     match wire::parse(bytes, &Limits::default()).expect("vector decodes") {
@@ -149,6 +154,27 @@ fn vector_4_ack() {
     let mut out = BytesMut::new();
     wire::encode_ack(&a, None, &mut out);
     assert_eq!(&out[..], &bytes[..]);
+}
+
+#[test]
+fn vectors_5_and_6_sampling_advice() {
+    let key = NodeKey::new((0u8..16).collect::<Vec<_>>());
+    for (hex, node, channel, m, key) in [(V5, 7, 1, 512u32, None), (V6, 11, 2, 384, Some(&key))] {
+        let bytes = unhex(hex);
+        let Frame::Control(c) = wire::parse(&bytes, &Limits::default()).unwrap() else {
+            panic!("expected a control frame")
+        };
+        assert_eq!(c.stream, StreamId { node, channel });
+        assert_eq!(c.msg_type, wire::CONTROL_SAMPLING_ADVICE);
+        assert_eq!(c.fields.len(), 1);
+        assert_eq!(c.fields[0].tag, wire::TLV_REQUESTED_M);
+        assert_eq!(c.fields[0].value, m.to_le_bytes());
+        assert_eq!(c.auth_tag.is_some(), key.is_some());
+        // The gateway's encoder produces the same bytes (computing the tag with the key).
+        let mut out = BytesMut::new();
+        wire::encode_control(&wire::Control::sampling_advice(c.stream, m), key, &mut out).unwrap();
+        assert_eq!(&out[..], &bytes[..]);
+    }
 }
 
 #[test]

@@ -421,15 +421,18 @@ impl GatewayConfig {
             }
         }
         if let Err(msg) = self.advice.check() {
-            let key = msg.split_whitespace().next().unwrap_or("advice").to_string();
+            let key = msg
+                .split_whitespace()
+                .next()
+                .unwrap_or("advice")
+                .to_string();
             return Err(bad(&key, msg));
         }
         if self.nodes.iter().any(|n| n.advise) && !self.pipeline.trust.enabled {
             let i = self.nodes.iter().position(|n| n.advise).unwrap_or(0);
             return Err(bad(
                 &format!("node[{i}].advise"),
-                "sampling advice needs the trust figures: set pipeline.trust.enabled = true"
-                    .into(),
+                "sampling advice needs the trust figures: set pipeline.trust.enabled = true".into(),
             ));
         }
         if self.ingest.max_connections == 0 {
@@ -598,7 +601,12 @@ impl GatewayConfig {
 
     /// The advice board for the nodes with `advise = true`, if any.
     pub fn advice_board(&self) -> Option<std::sync::Arc<crate::advice::AdviceBoard>> {
-        let nodes: Vec<u32> = self.nodes.iter().filter(|n| n.advise).map(|n| n.id).collect();
+        let nodes: Vec<u32> = self
+            .nodes
+            .iter()
+            .filter(|n| n.advise)
+            .map(|n| n.id)
+            .collect();
         (!nodes.is_empty()).then(|| std::sync::Arc::new(crate::advice::AdviceBoard::new(nodes)))
     }
 

@@ -129,7 +129,8 @@ pub struct AnalyticsMetrics {
     pub fault_amplitude: Family<FaultLabels, F64Gauge>,
     /// Per stream: the block time and the labels of its last block's fault amplitudes (so a
     /// label that no longer shows is removed rather than left stale).
-    fault_labels: std::sync::Mutex<std::collections::HashMap<StreamLabels, (i64, Vec<FaultLabels>)>>,
+    fault_labels:
+        std::sync::Mutex<std::collections::HashMap<StreamLabels, (i64, Vec<FaultLabels>)>>,
 }
 
 /// Gateway-wide figures, copied from the stages' atomics at each scrape.
@@ -563,7 +564,12 @@ impl GatewayMetrics {
             node,
             channel,
             label: label.to_string(),
-            spectrum: if row.source == 1 { "envelope" } else { "direct" }.into(),
+            spectrum: if row.source == 1 {
+                "envelope"
+            } else {
+                "direct"
+            }
+            .into(),
         };
         let mut seen = a.fault_labels.lock().unwrap_or_else(|e| e.into_inner());
         let entry = seen

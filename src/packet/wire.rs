@@ -52,7 +52,7 @@ pub const ACK_LEN: usize = 36;
 /// Length of the fixed part of a control frame.
 pub const CONTROL_FIXED_LEN: usize = 20;
 
-/// Control message type: sampling advice (reserved; body TLV [`TLV_REQUESTED_M`]).
+/// Control message type: sampling advice (wire format 5.2, revision 2; body TLV [`TLV_REQUESTED_M`]).
 pub const CONTROL_SAMPLING_ADVICE: u8 = 1;
 /// TLV tag of a sampling-advice message: requested samples per window, u32.
 pub const TLV_REQUESTED_M: u8 = 1;
@@ -205,8 +205,8 @@ pub struct Control {
 }
 
 impl Control {
-    /// A sampling-advice message asking the node for `m` samples per window (reserved: nodes
-    /// may ignore it for now).
+    /// A sampling-advice message asking the node for `m` samples per window (following it is
+    /// optional for a node; wire format 5.2).
     pub fn sampling_advice(stream: StreamId, m: u32) -> Control {
         Control {
             stream,

@@ -72,6 +72,62 @@ pub struct PipelineConfig {
     /// Features per block (`peaks`, `indicators`, events), with the machines' kinematics.
     /// Default on, shaft speed estimated, no bearings or gears known.
     pub analytics: AnalyticsConfig,
+    /// Per-stream overrides of `basis`, `solver`, `warm_start` and `method` (`[[pipeline.stream]]`
+    /// tables); the first entry that matches a stream applies. Default none.
+    #[serde(rename = "stream", skip_serializing_if = "Vec::is_empty")]
+    pub streams: Vec<StreamOverride>,
+}
+
+/// Reconstruction settings of some streams that differ from the pipeline's (e.g. a wavelet
+/// basis for an impulsive acoustic channel, or another lambda rule for a noisy node).
+#[derive(Debug, Clone, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct StreamOverride {
+    /// Node id.
+    pub node: u32,
+    /// Channel; absent: every channel of the node.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub channel: Option<u16>,
+    /// Sparsity basis of these streams.
+    #[serde(
+        default,
+        with = "opt_basis_kind_str",
+        skip_serializing_if = "Option::is_none"
+    )]
+    pub basis: Option<BasisKind>,
+    /// Solver settings of these streams, whole (a key left out takes the solver's default,
+    /// not the pipeline's).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub solver: Option<SolveSettings>,
+    /// Warm-start policy.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub warm_start: Option<WarmStart>,
+    /// Reconstruction method.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub method: Option<super::reconstruct::Method>,
+}
+
+impl StreamOverride {
+    fn matches(&self, s: StreamId) -> bool {
+        self.node == s.node && self.channel.is_none_or(|c| c == s.channel)
+    }
+}
+
+mod opt_basis_kind_str {
+    use crate::basis::BasisKind;
+    use serde::{Deserialize, Deserializer, Serializer};
+
+    pub fn serialize<S: Serializer>(k: &Option<BasisKind>, s: S) -> Result<S::Ok, S::Error> {
+        match k {
+            Some(k) => s.serialize_str(&k.to_string()),
+            None => s.serialize_none(),
+        }
+    }
+
+    pub fn deserialize<'de, D: Deserializer<'de>>(d: D) -> Result<Option<BasisKind>, D::Error> {
+        let text = String::deserialize(d)?;
+        text.parse().map(Some).map_err(serde::de::Error::custom)
+    }
 }
 
 impl PipelineConfig {
@@ -101,6 +157,7 @@ impl Default for PipelineConfig {
             max_queued_windows: 256,
             trust: TrustConfig::default(),
             analytics: AnalyticsConfig::default(),
+            streams: Vec::new(),
         }
     }
 }
@@ -344,6 +401,11 @@ struct StreamSlot {
     queue: VecDeque<Pending>,
     in_flight: bool,
     warm: WarmState,
+    /// The stream's reconstruction settings (the pipeline's, or its override's).
+    basis: BasisKind,
+    settings: Arc<SolveSettings>,
+    warm_start: WarmStart,
+    method: super::reconstruct::Method,
 }
 
 #[derive(Debug, Clone, Copy)]
@@ -521,6 +583,7 @@ impl Dispatcher<'_> {
             return i;
         }
         let i = self.slots.len();
+        let over = self.config.streams.iter().find(|o| o.matches(stream));
         self.slots.push(StreamSlot {
             key: StreamKey::new(stream.node, stream.channel),
             declared: false,
@@ -529,6 +592,15 @@ impl Dispatcher<'_> {
             queue: VecDeque::new(),
             in_flight: false,
             warm: WarmState::default(),
+            basis: over.and_then(|o| o.basis).unwrap_or(self.config.basis),
+            settings: over
+                .and_then(|o| o.solver.clone())
+                .map(Arc::new)
+                .unwrap_or_else(|| Arc::clone(&self.settings)),
+            warm_start: over
+                .and_then(|o| o.warm_start)
+                .unwrap_or(self.config.warm_start),
+            method: over.and_then(|o| o.method).unwrap_or(self.config.method),
         });
         self.by_stream.insert(stream, i);
         self.stats
@@ -676,7 +748,7 @@ impl Dispatcher<'_> {
                 start_time_unix_ns: t0_ns,
                 capture_id: h.capture_id,
                 units: h.units.symbol().to_string(),
-                basis: self.config.basis.to_string(),
+                basis: self.slots[s].basis.to_string(),
             }))?;
             self.slots[s].declared = true;
         } else {
@@ -730,10 +802,10 @@ impl Dispatcher<'_> {
                         stream_slot: s,
                         start,
                         packet,
-                        basis: self.config.basis,
-                        settings: Arc::clone(&self.settings),
-                        warm_start: self.config.warm_start,
-                        method: self.config.method,
+                        basis: self.slots[s].basis,
+                        settings: Arc::clone(&self.slots[s].settings),
+                        warm_start: self.slots[s].warm_start,
+                        method: self.slots[s].method,
                         warm: std::mem::take(&mut self.slots[s].warm),
                         trust: Arc::clone(&self.trust),
                     };

@@ -12,8 +12,8 @@
 //! that is delimited but invalid is counted and skipped, and the connection carries on.
 
 use super::config::IngestConfig;
-use crate::packet::codec::{CodecError, FrameCodec, RawFrame};
 use crate::advice::AdviceBoard;
+use crate::packet::codec::{CodecError, FrameCodec, RawFrame};
 use crate::packet::{wire, Ack, AuthError, Control, DecodeError, Frame, KeyRing, Packet, StreamId};
 use bytes::BytesMut;
 use futures::{SinkExt, StreamExt};
@@ -368,7 +368,11 @@ async fn connection(
                 }
             }
         }
-        if let Some(board) = shared.advice.as_deref().filter(|b| b.advises(ack.stream.node)) {
+        if let Some(board) = shared
+            .advice
+            .as_deref()
+            .filter(|b| b.advises(ack.stream.node))
+        {
             if !advised.iter().any(|(s, _)| *s == ack.stream) {
                 advised.push((ack.stream, None));
                 advice_seen = advice_seen.wrapping_sub(1); // look again for the new stream

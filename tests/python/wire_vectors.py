@@ -88,6 +88,16 @@ def ack(node, channel, capture, seq):
     return frame + struct.pack("<I", zlib.crc32(frame))
 
 
+def advice(node, channel, m, key=None):
+    """Control frame (kind 3), message type 1 (sampling advice), TLV tag 1 = m (u32)."""
+    body = struct.pack("<IHBB", node, channel, 1, 0) + struct.pack("<BBI", 1, 4, m)
+    length = 12 + len(body) + (16 if key else 0) + 4
+    frame = MAGIC + struct.pack("<IBBH", length, 1, 3, 0x0008 if key else 0) + body
+    if key:
+        frame += hmac.new(key, frame, hashlib.sha256).digest()[:16]
+    return frame + struct.pack("<I", zlib.crc32(frame))
+
+
 if __name__ == "__main__":
     g = Pcg32(42, 54)
     print("pcg32(42, 54):", [hex(g.next()) for _ in range(6)])
@@ -105,5 +115,8 @@ if __name__ == "__main__":
                 idx3, 0, [1, 2, 3, 4, -1, -2, -3, -4], key=key)
     f4 = ack(7, 1, 0x0A0B0C0D, 3)
     print("seeded frame indices:", sample_indices(0xDEADBEEF, 16, 4))
-    for name, f in [("varint", f1), ("seeded", f2), ("bitmap+auth", f3), ("ack", f4)]:
+    f5 = advice(7, 1, 512)
+    f6 = advice(11, 2, 384, key=key)
+    for name, f in [("varint", f1), ("seeded", f2), ("bitmap+auth", f3), ("ack", f4),
+                    ("advice", f5), ("advice+auth", f6)]:
         print(name, len(f), f.hex())
