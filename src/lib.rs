@@ -28,6 +28,8 @@
 //! - [`bench`] (feature `hdf5-store`): the measurements of `csgate bench` (real-time capacity,
 //!   FISTA iteration against its transform floor, long replay memory, side-by-side window sets).
 //! - [`inspect`] (feature `hdf5-store`): summary and PNG plots of a record (`csgate inspect`).
+//! - [`fuzz`] (feature `hdf5-store`): seeded mutation fuzzing of every input decoder (frames,
+//!   codec, packet logs, configuration, records) for `csgate bench --fuzz` and the tests.
 //! - [`plan`]: sampling planner (samples per window from the L1 phase transition, payload).
 //!
 //! ## Cargo features
@@ -42,6 +44,8 @@ pub mod bench;
 #[cfg(feature = "hdf5-store")]
 pub mod daemon;
 pub mod features;
+#[cfg(feature = "hdf5-store")]
+pub mod fuzz;
 #[cfg(feature = "hdf5-store")]
 pub mod inspect;
 pub mod packet;

@@ -4,6 +4,9 @@ mod analytics;
 mod basis;
 mod bench;
 mod features;
+/// Seeded mutation fuzzing of every input decoder, and the regressions it found.
+#[cfg(feature = "hdf5-store")]
+mod fuzz;
 /// `csgate inspect`: JSON summary, PNG plots, bad input.
 #[cfg(feature = "hdf5-store")]
 mod inspect;

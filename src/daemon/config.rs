@@ -188,8 +188,9 @@ impl Default for IngestSection {
     }
 }
 
-/// `[[node]]`: one enrolled node.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+/// `[[node]]`: one enrolled node. Its `Debug` form redacts the key (configs are logged and
+/// printed in error paths; keys never are).
+#[derive(Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct NodeEntry {
     /// Node id on the wire.
@@ -201,6 +202,16 @@ pub struct NodeEntry {
     /// (and are refused when `ingest.require_auth` is set).
     #[serde(default)]
     pub key: Option<String>,
+}
+
+impl std::fmt::Debug for NodeEntry {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("NodeEntry")
+            .field("id", &self.id)
+            .field("name", &self.name)
+            .field("key", &self.key.as_ref().map(|_| "<redacted>"))
+            .finish()
+    }
 }
 
 /// `[record]`.
