@@ -46,3 +46,79 @@ fn config_parser_short_run() {
 fn record_reader_short_run() {
     run(Target::Record, 100);
 }
+
+/// Regression (found by the `log` target): a damaged length field in a record near the end of
+/// a packet log, declaring more bytes than the file has left, made the reader report the rest
+/// of the file as one cut record and drop every intact record after it.
+#[test]
+fn packet_log_damaged_length_near_the_end_keeps_later_records() {
+    use csgate::packet::log::{LogReader, LogWriter};
+    use csgate::packet::wire::encode_window_to_vec;
+    let dir = crate::util::test_dir();
+    let path = dir.path().join("damaged.cslog");
+    let mut frames = Vec::new();
+    {
+        let mut w = LogWriter::open_append(&path, 0, "regression").unwrap();
+        for seq in 0..4u64 {
+            let p = packet(seq);
+            let f = encode_window_to_vec(&p, None).unwrap();
+            w.append(seq as i64, &f).unwrap();
+            frames.push(f);
+        }
+        w.sync().unwrap();
+    }
+    let mut bytes = std::fs::read(&path).unwrap();
+    // Record 1's length field (4 bytes after its magic) now claims 60000 bytes.
+    let first = bytes.len() - frames.iter().map(|f| f.len() + 8).sum::<usize>();
+    let rec1 = first + frames[0].len() + 8 + 8;
+    bytes[rec1 + 4..rec1 + 8].copy_from_slice(&60_000u32.to_le_bytes());
+    std::fs::write(&path, &bytes).unwrap();
+    let mut r = LogReader::open(&path).unwrap();
+    let got: Vec<Vec<u8>> = r
+        .by_ref()
+        .map(|rec| rec.unwrap().frame.as_bytes().to_vec())
+        .collect();
+    assert_eq!(got, vec![frames[0].clone(), frames[2].clone(), frames[3].clone()]);
+    assert_eq!(r.stats().garbage_regions, 1);
+    assert_eq!(r.stats().truncated, None);
+}
+
+pub fn packet(seq: u64) -> csgate::packet::Packet {
+    use csgate::packet::{Packet, RawValues, Sampling, StreamId, Units, WindowHeader};
+    let header = WindowHeader {
+        stream: StreamId {
+            node: 9,
+            channel: 0,
+        },
+        capture_id: 1,
+        seq,
+        sample_rate_hz: 25_600.0,
+        window_len: 64,
+        hop_len: 32,
+        t0_us: 1_796_126_400_000_000,
+        units: Units::Counts,
+        scale: 1.0,
+        adc_bits: 16,
+    };
+    Packet::new(
+        header,
+        Sampling::Seeded { seed: seq, m: 16 },
+        RawValues::I16((0..16).collect()),
+    )
+    .unwrap()
+}
+
+/// Regression (found by the `record` target): a record with one damaged metadata block made
+/// the SWMR reader retry with a growing back-off for tens of minutes (the test run hung). The
+/// reader now gives HDF5 a few attempts only; these 64 further seeds damage the small record
+/// at random offsets. The test has no time limit of its own: a regression shows as a hang.
+#[test]
+fn record_reader_fails_fast_on_damaged_metadata() {
+    let mut failures = Vec::new();
+    for seed in 0..64u64 {
+        if let Err(f) = csgate::fuzz::run_case(Target::Record, seed) {
+            failures.push(f.to_string());
+        }
+    }
+    assert!(failures.is_empty(), "{failures:?}");
+}

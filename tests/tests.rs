@@ -12,6 +12,9 @@ mod fuzz;
 mod inspect;
 mod pipeline;
 mod plan;
+/// Security posture: loopback defaults, keys never printed, enrolment.
+#[cfg(feature = "hdf5-store")]
+mod security;
 /// The gateway daemon: end to end over loopback, SIGTERM, restart, configuration errors.
 #[cfg(feature = "hdf5-store")]
 mod serve;
