@@ -77,7 +77,10 @@ fn serve_check_and_error_paths_never_print_a_key() {
         std::fs::write(&path, text).unwrap();
         let out = run(&["serve", "--check", "--config", path.to_str().unwrap()]);
         assert!(!out.contains(KEY), "case {i} printed the key:\n{out}");
-        assert!(!out.contains(&KEY[..20]), "case {i} printed part of the key:\n{out}");
+        assert!(
+            !out.contains(&KEY[..20]),
+            "case {i} printed part of the key:\n{out}"
+        );
         if i == 0 {
             assert!(out.contains("valid"), "{out}");
         }
@@ -102,11 +105,23 @@ fn with_enrolment_only_enrolled_nodes_with_valid_tags_pass() {
         encode_window_to_vec(&p, key).unwrap()
     };
     let enrolled = NodeKey::from_hex(KEY).unwrap();
-    assert!(ring.check(&frame(5, Some(&enrolled))).is_ok(), "enrolled, valid tag");
-    assert!(ring.check(&frame(5, Some(&own))).is_err(), "enrolled, wrong key");
+    assert!(
+        ring.check(&frame(5, Some(&enrolled))).is_ok(),
+        "enrolled, valid tag"
+    );
+    assert!(
+        ring.check(&frame(5, Some(&own))).is_err(),
+        "enrolled, wrong key"
+    );
     assert!(ring.check(&frame(5, None)).is_err(), "enrolled, untagged");
-    assert!(ring.check(&frame(6, Some(&own))).is_err(), "not enrolled, own key");
-    assert!(ring.check(&frame(6, None)).is_err(), "not enrolled, untagged");
+    assert!(
+        ring.check(&frame(6, Some(&own))).is_err(),
+        "not enrolled, own key"
+    );
+    assert!(
+        ring.check(&frame(6, None)).is_err(),
+        "not enrolled, untagged"
+    );
     // A valid frame with one byte changed (CRC fixed up) no longer verifies.
     let mut f = frame(5, Some(&enrolled));
     f[30] ^= 1;

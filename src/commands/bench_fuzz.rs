@@ -1,8 +1,10 @@
 //! `csgate bench --fuzz N`: the long fuzzing run over every input decoder (`csgate::fuzz`).
 
-use csgate::fuzz::{run_case, run_target, Target, TargetReport};
+use csgate::fuzz::{case_seed, run_case, run_target, CaseOutcome, Failure, Target, TargetReport};
 use indicatif::{ProgressBar, ProgressStyle};
+use std::os::unix::process::ExitStatusExt;
 use std::process::ExitCode;
+use std::time::Duration;
 use std::time::Instant;
 
 /// What the fuzz run was asked for (from `BenchArgs`).
@@ -58,7 +60,11 @@ pub fn run(opts: FuzzRun) -> anyhow::Result<ExitCode> {
             b.set_prefix(target.name());
             b
         };
-        let report = run_target(target, cases, opts.seed, |done| bar.set_position(done));
+        let report = if target == Target::Record {
+            isolated_record_run(cases, opts.seed, |done| bar.set_position(done))?
+        } else {
+            run_target(target, cases, opts.seed, |done| bar.set_position(done))
+        };
         bar.finish_and_clear();
         reports.push(report);
     }
@@ -168,4 +174,68 @@ pub fn run_one(target: Target, seed: u64) -> ExitCode {
             ExitCode::FAILURE
         }
     }
+}
+
+/// The record target with every case in a child process (`csgate bench --fuzz-case`): the HDF5
+/// C library can crash the process outright on some damaged files (a segmentation fault,
+/// which no `catch_unwind` sees), and such a crash must be reported with its seed, not end the
+/// run.
+fn isolated_record_run(
+    cases: u64,
+    base_seed: u64,
+    mut progress: impl FnMut(u64),
+) -> anyhow::Result<TargetReport> {
+    let exe = std::env::current_exe()?;
+    let start = Instant::now();
+    let mut report = TargetReport {
+        target: Target::Record,
+        cases: 0,
+        accepted: 0,
+        elapsed: Duration::ZERO,
+        failures: Vec::new(),
+        failed: 0,
+        slowest: (Duration::ZERO, 0),
+    };
+    for i in 0..cases {
+        let seed = case_seed(base_seed, i);
+        let t = Instant::now();
+        let out = std::process::Command::new(&exe)
+            .args(["bench", "--fuzz-case", &format!("record:{seed:#x}")])
+            .stderr(std::process::Stdio::null())
+            .output()?;
+        let took = t.elapsed();
+        if took > report.slowest.0 {
+            report.slowest = (took, seed);
+        }
+        let text = String::from_utf8_lossy(&out.stdout);
+        let failure = match (out.status.code(), out.status.signal()) {
+            (Some(0), _) => {
+                if text.contains(&format!("{:?}", CaseOutcome::Accepted)) {
+                    report.accepted += 1;
+                }
+                None
+            }
+            (_, Some(sig)) => Some(format!(
+                "the process died of signal {sig} (a crash inside the HDF5 C library)"
+            )),
+            (code, _) => Some(format!("exit {code:?}: {}", text.trim())),
+        };
+        if let Some(message) = failure {
+            report.failed += 1;
+            if report.failures.len() < csgate::fuzz::MAX_FAILURES_KEPT {
+                report.failures.push(Failure {
+                    target: Target::Record,
+                    seed,
+                    message,
+                });
+            }
+        }
+        report.cases += 1;
+        if i % 16 == 0 {
+            progress(i);
+        }
+    }
+    progress(cases);
+    report.elapsed = start.elapsed();
+    Ok(report)
 }

@@ -177,11 +177,9 @@ pub(crate) fn mutate_frame(rng: &mut FuzzRng, b: &mut Vec<u8>, other: &[u8]) {
                 let at = if rng.one_in(2) { 64 } else { 68 };
                 let v: u32 = match rng.below(3) {
                     0 => u32::MAX,
-                    1 => {
-                        u32::from_le_bytes(b[at..at + 4].try_into().expect("4"))
-                            .wrapping_add(rng.range(0, 4) as u32)
-                            .wrapping_sub(2)
-                    }
+                    1 => u32::from_le_bytes(b[at..at + 4].try_into().expect("4"))
+                        .wrapping_add(rng.range(0, 4) as u32)
+                        .wrapping_sub(2),
                     _ => rng.next_u64() as u32,
                 };
                 b[at..at + 4].copy_from_slice(&v.to_le_bytes());

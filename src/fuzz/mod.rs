@@ -132,7 +132,10 @@ impl std::str::FromStr for Target {
             .find(|t| t.name() == s)
             .ok_or_else(|| {
                 let names: Vec<_> = Target::all().iter().map(|t| t.name()).collect();
-                format!("unknown fuzz target {s:?}; expected one of {}", names.join(", "))
+                format!(
+                    "unknown fuzz target {s:?}; expected one of {}",
+                    names.join(", ")
+                )
             })
     }
 }

@@ -283,7 +283,10 @@ fn log_case(rng: &mut FuzzRng) -> CaseResult {
     let bound = file.len() / (8 + wire::MIN_FRAME_LEN) + 2;
     loop {
         if got.len() > bound {
-            return Err(format!("more than {bound} records from {} bytes", file.len()));
+            return Err(format!(
+                "more than {bound} records from {} bytes",
+                file.len()
+            ));
         }
         match reader.next_record() {
             Ok(Some(r)) => {
@@ -350,11 +353,7 @@ fn config_text(rng: &mut FuzzRng) -> (String, Vec<String>) {
     for i in 0..rng.below(4) {
         let key = (!rng.one_in(4)).then(|| {
             let len = rng.range(16, 32);
-            let k: String = rng
-                .bytes(len)
-                .iter()
-                .map(|b| format!("{b:02x}"))
-                .collect();
+            let k: String = rng.bytes(len).iter().map(|b| format!("{b:02x}")).collect();
             k
         });
         if let Some(k) = &key {
@@ -380,8 +379,16 @@ fn random_value(rng: &mut FuzzRng) -> toml::Value {
         3 => Value::Float([f64::NAN, f64::INFINITY, -0.0, 1e300][rng.below(4)]),
         4 => Value::Boolean(rng.one_in(2)),
         5 => Value::String(
-            ["", "0.0.0.0:7700", "[::]:0", "x", "../..", "info,csgate=trace", "zz"][rng.below(7)]
-                .into(),
+            [
+                "",
+                "0.0.0.0:7700",
+                "[::]:0",
+                "x",
+                "../..",
+                "info,csgate=trace",
+                "zz",
+            ][rng.below(7)]
+            .into(),
         ),
         6 => {
             let len = rng.below(12);
@@ -433,8 +440,17 @@ fn mutate_text(rng: &mut FuzzRng, text: &str) -> String {
         }
         2 if !lines.is_empty() => {
             let i = rng.below(lines.len());
-            let tok = ["=", "[", "]]", "\"", "'''", "\\u", "#", "=\"\"", "9999999999999999999"]
-                [rng.below(9)];
+            let tok = [
+                "=",
+                "[",
+                "]]",
+                "\"",
+                "'''",
+                "\\u",
+                "#",
+                "=\"\"",
+                "9999999999999999999",
+            ][rng.below(9)];
             let at = rng.below(lines[i].len() + 1);
             if lines[i].is_char_boundary(at) {
                 lines[i].insert_str(at, tok);
