@@ -6,7 +6,7 @@
 CARGO ?= cargo
 PY := .venv/bin/python
 
-.PHONY: demo test setup setup-python build lint rust-test python-test bench bench-criterion
+.PHONY: demo test setup setup-python build lint deny rust-test python-test bench bench-criterion
 
 # The demo site's node 104 signs its frames; its key is in configs/demo-site.toml.
 DEMO_KEY := 104=6b6579206f662051462d31303420666f722064656d6f
@@ -19,7 +19,7 @@ demo: setup
 	  --machines configs/demo-site.toml \
 	  --out demo-out/demo-site-$$STAMP.h5 --events demo-out/demo-site-$$STAMP.jsonl
 
-test: setup-python lint rust-test python-test
+test: setup-python lint deny rust-test python-test
 
 setup:
 	bash scripts/setup.sh
@@ -30,6 +30,11 @@ setup-python:
 lint:
 	$(CARGO) fmt --all -- --check
 	$(CARGO) clippy --locked --release --all-targets -- -D warnings
+
+# Dependency policy (deny.toml) with cargo-deny, installed once from crates.io; the advisories
+# check runs only when a RustSec database is present (scripts/deny.sh says which ran).
+deny:
+	bash scripts/deny.sh
 
 rust-test:
 	$(CARGO) test --locked --release

@@ -30,6 +30,8 @@
 //! - [`inspect`] (feature `hdf5-store`): summary and PNG plots of a record (`csgate inspect`).
 //! - [`advice`]: sampling advice to nodes (samples per window from each stream's sparsity and
 //!   trust) and the board the ingest sends it from.
+//! - [`fuzz`] (feature `hdf5-store`): seeded mutation fuzzing of every input decoder (frames,
+//!   codec, packet logs, configuration, records) for `csgate bench --fuzz` and the tests.
 //! - [`plan`]: sampling planner (samples per window from the L1 phase transition, payload).
 //!
 //! ## Cargo features
@@ -45,6 +47,8 @@ pub mod bench;
 #[cfg(feature = "hdf5-store")]
 pub mod daemon;
 pub mod features;
+#[cfg(feature = "hdf5-store")]
+pub mod fuzz;
 #[cfg(feature = "hdf5-store")]
 pub mod inspect;
 pub mod packet;

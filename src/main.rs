@@ -1,6 +1,8 @@
 //! The `csgate` command line: parses arguments, sets up logging and hands off to the library.
 //! Each subcommand lives in its own file under `src/commands/`.
 
+#![forbid(unsafe_code)]
+
 use clap::{Parser, Subcommand};
 use std::process::ExitCode;
 

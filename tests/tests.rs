@@ -7,11 +7,17 @@ mod analytics;
 mod basis;
 mod bench;
 mod features;
+/// Seeded mutation fuzzing of every input decoder, and the regressions it found.
+#[cfg(feature = "hdf5-store")]
+mod fuzz;
 /// `csgate inspect`: JSON summary, PNG plots, bad input.
 #[cfg(feature = "hdf5-store")]
 mod inspect;
 mod pipeline;
 mod plan;
+/// Security posture: loopback defaults, keys never printed, enrolment.
+#[cfg(feature = "hdf5-store")]
+mod security;
 /// The gateway daemon: end to end over loopback, SIGTERM, restart, configuration errors.
 #[cfg(feature = "hdf5-store")]
 mod serve;

@@ -29,7 +29,11 @@ With --long-replay MINUTES: a log of --streams streams of that length is generat
 replayed, with throughput, real-time factor and the resident memory sampled through the run \
 (10 streams for 60 minutes need about 1.3 GiB of log and 3.6 GiB of record in the scratch \
 folder).\n\nWith --solve-set MANIFEST.json: solves a window set written by the side-by-side \
-harness (bench/python/side_by_side.py; format in the csgate::bench module docs)."
+harness (bench/python/side_by_side.py; format in the csgate::bench module docs).\n\nWith \
+--fuzz N: the mutation fuzzing run instead: N seeded cases for each in-memory target (frame \
+decoder, streaming codec, packet-log reader, configuration parser) and --fuzz-records cases of \
+the HDF5 record reader; prints cases, wall time and cases/s per target and every failing case \
+with the seed that reproduces it (--fuzz-case TARGET:SEED); exit status 1 on any failure."
 )]
 pub struct BenchArgs {
     /// Channels in the capacity run (default: 4 per worker, at least 8; more channels than
@@ -73,6 +77,22 @@ pub struct BenchArgs {
     /// beside it.
     #[arg(long, value_name = "MANIFEST.json")]
     pub solve_set: Option<PathBuf>,
+    /// Fuzzing run: cases per in-memory target (frame, codec, log, config).
+    #[arg(long, value_name = "N", conflicts_with_all = ["solve_set", "long_replay"])]
+    pub fuzz: Option<u64>,
+    /// Cases of the HDF5 record target in the fuzzing run (each writes and opens a file;
+    /// default: N/100, at least 100).
+    #[arg(long, value_name = "N", requires = "fuzz")]
+    pub fuzz_records: Option<u64>,
+    /// Base seed of the fuzzing run.
+    #[arg(long, default_value_t = 1, value_name = "SEED")]
+    pub fuzz_seed: u64,
+    /// Only these fuzz targets, comma separated (frame, codec, log, config, record).
+    #[arg(long, value_name = "LIST", value_delimiter = ',', value_parser = parse_target, requires = "fuzz")]
+    pub fuzz_targets: Vec<csgate::fuzz::Target>,
+    /// Run one fuzz case again from a failure line: TARGET:SEED.
+    #[arg(long, value_name = "TARGET:SEED", value_parser = super::bench_fuzz::parse_case, conflicts_with = "fuzz")]
+    pub fuzz_case: Option<(csgate::fuzz::Target, u64)>,
     /// Print one JSON object instead of text.
     #[arg(long)]
     pub json: bool,
@@ -81,8 +101,25 @@ pub struct BenchArgs {
     pub quiet: bool,
 }
 
+fn parse_target(s: &str) -> Result<csgate::fuzz::Target, String> {
+    s.parse()
+}
+
 /// Runs the benchmark.
 pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
+    if let Some((target, seed)) = args.fuzz_case {
+        return Ok(super::bench_fuzz::run_one(target, seed));
+    }
+    if let Some(cases) = args.fuzz {
+        return super::bench_fuzz::run(super::bench_fuzz::FuzzRun {
+            cases,
+            record_cases: args.fuzz_records.unwrap_or((cases / 100).max(100)),
+            seed: args.fuzz_seed,
+            targets: args.fuzz_targets.clone(),
+            quiet: args.quiet,
+            json: args.json,
+        });
+    }
     if let Some(manifest) = &args.solve_set {
         let result = solve_window_set(manifest)
             .with_context(|| format!("solve the window set {}", manifest.display()))?;

@@ -1,6 +1,7 @@
 //! One file per subcommand. Each exposes an `Args` struct (clap) and `run(args)`.
 
 pub mod bench;
+pub mod bench_fuzz;
 pub mod demo;
 #[cfg(feature = "hdf5-store")]
 pub mod inspect;

@@ -137,11 +137,12 @@ pub fn run(args: ReplayArgs) -> anyhow::Result<ExitCode> {
     for spec in &args.keys {
         let (node, hex) = spec
             .split_once('=')
-            .with_context(|| format!("--key {spec:?}: expected NODE=HEX"))?;
+            // The key text is never echoed: it is a secret (and may be a mistyped one).
+            .with_context(|| format!("--key with {} characters: expected NODE=HEX", spec.len()))?;
         let node: u32 = node
             .trim()
             .parse()
-            .with_context(|| format!("--key {spec:?}: node id must be a number"))?;
+            .with_context(|| format!("--key {node:?}=...: node id must be a number"))?;
         let key =
             NodeKey::from_hex(hex.trim()).with_context(|| format!("--key for node {node}"))?;
         keys.insert(node, key);

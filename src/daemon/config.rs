@@ -190,8 +190,9 @@ impl Default for IngestSection {
     }
 }
 
-/// `[[node]]`: one enrolled node.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+/// `[[node]]`: one enrolled node. Its `Debug` form redacts the key (configs are logged and
+/// printed in error paths; keys never are).
+#[derive(Clone, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct NodeEntry {
     /// Node id on the wire.
@@ -207,6 +208,17 @@ pub struct NodeEntry {
     /// computed from its streams' sparsity and trust. Default false.
     #[serde(default)]
     pub advise: bool,
+}
+
+impl std::fmt::Debug for NodeEntry {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("NodeEntry")
+            .field("id", &self.id)
+            .field("name", &self.name)
+            .field("key", &self.key.as_ref().map(|_| "<redacted>"))
+            .field("advise", &self.advise)
+            .finish()
+    }
 }
 
 /// `[record]`.

@@ -63,7 +63,7 @@ pub struct LogHeader {
 }
 
 impl LogHeader {
-    fn encode(&self) -> Vec<u8> {
+    pub(crate) fn encode(&self) -> Vec<u8> {
         let mut out = Vec::with_capacity(28 + self.note.len());
         out.extend_from_slice(&LOG_MAGIC);
         out.extend_from_slice(&self.version.to_le_bytes());
@@ -322,6 +322,16 @@ impl<R: Read> LogReader<R> {
         self.garbage_end = Some(self.offset);
     }
 
+    /// Bytes to skip so that the next frame magic after the current one follows a
+    /// timestamp-sized prefix, if the buffer holds one.
+    fn next_magic(&self) -> Option<usize> {
+        self.buf
+            .get(RECORD_PREFIX_LEN + 1..)?
+            .windows(wire::MAGIC.len())
+            .position(|w| w == wire::MAGIC)
+            .map(|p| p + 1)
+    }
+
     /// The next complete record, `Ok(None)` at the end of the file.
     pub fn next_record(&mut self) -> Result<Option<LogRecord>, LogError> {
         loop {
@@ -354,6 +364,13 @@ impl<R: Read> LogReader<R> {
                     }));
                 }
                 Ok(None) if !self.eof => self.fill()?,
+                Ok(None) if self.next_magic().is_some() => {
+                    // The file ends before the length this record declares, yet another frame
+                    // magic follows: the length field is damaged, not the tail cut. Resync, or
+                    // every intact record after it would be dropped as one "cut" record.
+                    let k = self.next_magic().expect("just checked");
+                    self.skip(k);
+                }
                 Ok(None) => {
                     let cut = Truncation {
                         offset: self.offset,
@@ -367,11 +384,7 @@ impl<R: Read> LogReader<R> {
                 }
                 Err(_) => {
                     // Resync: the next place a frame magic follows a timestamp-sized prefix.
-                    let next = self.buf[RECORD_PREFIX_LEN + 1..]
-                        .windows(wire::MAGIC.len())
-                        .position(|w| w == wire::MAGIC)
-                        .map(|p| p + 1);
-                    match next {
+                    match self.next_magic() {
                         Some(k) => self.skip(k),
                         None if self.eof => {
                             let k = self.buf.len();

@@ -25,8 +25,8 @@ pub mod defaults {
     pub const CHANNEL_CAPACITY: usize = 1024;
 }
 
-/// Settings of the TCP ingest.
-#[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
+/// Settings of the TCP ingest. Its `Debug` form shows the enrolled node ids, never their keys.
+#[derive(Clone, PartialEq, Serialize, Deserialize)]
 #[serde(default)]
 pub struct IngestConfig {
     /// Address to listen on; default `127.0.0.1:7700`.
@@ -48,6 +48,27 @@ pub struct IngestConfig {
     /// Record every accepted window frame, exactly as received, to this packet log (appended
     /// if it exists), for later `csgate replay`. Default: none.
     pub record_log: Option<std::path::PathBuf>,
+}
+
+impl std::fmt::Debug for IngestConfig {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        let enrolled: Vec<(&str, &str)> = self
+            .enrolled
+            .keys()
+            .map(|id| (id.as_str(), "<redacted>"))
+            .collect();
+        f.debug_struct("IngestConfig")
+            .field("listen", &self.listen)
+            .field("max_connections", &self.max_connections)
+            .field("idle_timeout_ms", &self.idle_timeout_ms)
+            .field("limits", &self.limits)
+            .field("channel_capacity", &self.channel_capacity)
+            .field("require_auth", &self.require_auth)
+            .field("enrolled", &enrolled)
+            .field("send_acks", &self.send_acks)
+            .field("record_log", &self.record_log)
+            .finish()
+    }
 }
 
 impl Default for IngestConfig {

@@ -24,6 +24,9 @@ pub struct FileAttrs {
     pub created: String,
 }
 
+/// Attempts of the HDF5 library at a metadata block whose checksum fails, in SWMR read mode.
+pub const METADATA_READ_ATTEMPTS: u32 = 4;
+
 /// An open record file (read-only).
 pub struct RecordReader {
     path: PathBuf,
@@ -33,7 +36,14 @@ pub struct RecordReader {
 impl RecordReader {
     /// Opens `path` read-only in SWMR read mode and checks its layout version.
     pub fn open(path: &Path) -> Result<Self, StoreError> {
-        let file = File::open_as(path, OpenMode::ReadSWMR).map_err(StoreError::hdf5(path))?;
+        // A SWMR reader retries a metadata block whose checksum fails (it may be racing the
+        // writer); HDF5 1.10's default of 100 attempts, with a back-off that grows each time,
+        // made one damaged block stall `inspect` for tens of minutes (found by the `record`
+        // fuzz target). A few attempts still cover a racing writer's flush.
+        let file = File::with_options()
+            .with_fapl(|p| p.metadata_read_attempts(METADATA_READ_ATTEMPTS))
+            .open_as(path, OpenMode::ReadSWMR)
+            .map_err(StoreError::hdf5(path))?;
         let reader = Self {
             path: path.to_path_buf(),
             file,

@@ -1,0 +1,145 @@
+//! A short seeded run of every fuzz target (`csgate::fuzz`; the long run is
+//! `csgate bench --fuzz N`, figures in BENCHMARKS.md), and regression cases for the bugs the
+//! fuzzer found.
+
+use csgate::fuzz::{run_target, Target};
+
+/// Fixed so that a failure here reproduces with `csgate bench --fuzz-seed`.
+const SEED: u64 = 0x00C5_6A7E_F022_0001;
+
+fn run(target: Target, cases: u64) {
+    let report = run_target(target, cases, SEED, |_| {});
+    assert_eq!(report.cases, cases);
+    let lines: Vec<String> = report.failures.iter().map(|f| f.to_string()).collect();
+    assert!(
+        report.failed == 0,
+        "{} of {cases} {target} cases failed:\n{}",
+        report.failed,
+        lines.join("\n")
+    );
+    // The mix must reach the accepting paths too, or the round-trip invariants go untested.
+    assert!(report.accepted > 0, "no {target} case was accepted");
+    assert!(report.accepted < cases, "no {target} case was rejected");
+}
+
+#[test]
+fn frame_decoder_short_run() {
+    run(Target::Frame, 20_000);
+}
+
+#[test]
+fn streaming_codec_short_run() {
+    run(Target::Codec, 5_000);
+}
+
+#[test]
+fn packet_log_reader_short_run() {
+    run(Target::Log, 5_000);
+}
+
+#[test]
+fn config_parser_short_run() {
+    run(Target::Config, 3_000);
+}
+
+/// The record target runs each case in a child process (`csgate bench` does this for it):
+/// HDF5 1.10 can die of a segmentation fault on some damaged files, which no `catch_unwind`
+/// can turn into an error. Such crashes are printed with their seeds and are a known, open
+/// finding (docs/operations-input.md); every other outcome must be an error or a summary.
+#[test]
+fn record_reader_short_run() {
+    let out = std::process::Command::new(crate::util::csgate_bin())
+        .args([
+            "bench",
+            "--fuzz",
+            "0",
+            "--fuzz-records",
+            "100",
+            "--fuzz-targets",
+            "record",
+        ])
+        .args(["--fuzz-seed", &SEED.to_string(), "--json"])
+        .output()
+        .unwrap();
+    let report: serde_json::Value = serde_json::from_slice(&out.stdout).unwrap();
+    let target = &report["targets"][0];
+    assert_eq!(target["cases"], 100);
+    assert!(target["accepted"].as_u64().unwrap() > 0, "{report}");
+    for f in target["failures"].as_array().unwrap() {
+        let message = f["message"].as_str().unwrap();
+        eprintln!(
+            "record fuzz: known HDF5 crash, seed {}: {message}",
+            f["seed"]
+        );
+        assert!(message.contains("signal"), "record case failed: {f}");
+    }
+}
+
+/// Regression (found by the `log` target): a damaged length field in a record near the end of
+/// a packet log, declaring more bytes than the file has left, made the reader report the rest
+/// of the file as one cut record and drop every intact record after it.
+#[test]
+fn packet_log_damaged_length_near_the_end_keeps_later_records() {
+    use csgate::packet::log::{LogReader, LogWriter};
+    use csgate::packet::wire::encode_window_to_vec;
+    let dir = crate::util::test_dir();
+    let path = dir.path().join("damaged.cslog");
+    let mut frames = Vec::new();
+    {
+        let mut w = LogWriter::open_append(&path, 0, "regression").unwrap();
+        for seq in 0..4u64 {
+            let p = packet(seq);
+            let f = encode_window_to_vec(&p, None).unwrap();
+            w.append(seq as i64, &f).unwrap();
+            frames.push(f);
+        }
+        w.sync().unwrap();
+    }
+    let mut bytes = std::fs::read(&path).unwrap();
+    // Record 1's length field (4 bytes after its magic) now claims 60000 bytes.
+    let first = bytes.len() - frames.iter().map(|f| f.len() + 8).sum::<usize>();
+    let rec1 = first + frames[0].len() + 8 + 8;
+    bytes[rec1 + 4..rec1 + 8].copy_from_slice(&60_000u32.to_le_bytes());
+    std::fs::write(&path, &bytes).unwrap();
+    let mut r = LogReader::open(&path).unwrap();
+    let got: Vec<Vec<u8>> = r
+        .by_ref()
+        .map(|rec| rec.unwrap().frame.as_bytes().to_vec())
+        .collect();
+    assert_eq!(
+        got,
+        vec![frames[0].clone(), frames[2].clone(), frames[3].clone()]
+    );
+    assert_eq!(r.stats().garbage_regions, 1);
+    assert_eq!(r.stats().truncated, None);
+}
+
+pub fn packet(seq: u64) -> csgate::packet::Packet {
+    use csgate::packet::{Packet, RawValues, Sampling, StreamId, Units, WindowHeader};
+    let header = WindowHeader {
+        stream: StreamId {
+            node: 9,
+            channel: 0,
+        },
+        capture_id: 1,
+        seq,
+        sample_rate_hz: 25_600.0,
+        window_len: 64,
+        hop_len: 32,
+        t0_us: 1_796_126_400_000_000,
+        units: Units::Counts,
+        scale: 1.0,
+        adc_bits: 16,
+    };
+    Packet::new(
+        header,
+        Sampling::Seeded { seed: seq, m: 16 },
+        RawValues::I16((0..16).collect()),
+    )
+    .unwrap()
+}
+
+// Regression (found by the `record` target): a record with one damaged metadata block made
+// the SWMR reader retry with a growing back-off for tens of minutes (the test run hung). The
+// reader now gives HDF5 a few attempts only: the short run above covers it, since a hang
+// there hangs the test.
