@@ -109,7 +109,7 @@ pub struct StreamOverride {
 
 impl StreamOverride {
     fn matches(&self, s: StreamId) -> bool {
-        self.node == s.node && self.channel.is_none_or(|c| c == s.channel)
+        self.node == s.node && self.channel.map_or(true, |c| c == s.channel)
     }
 }
 

@@ -47,7 +47,7 @@ pub async fn send_following_advice(
     target: SocketAddr,
     speed: f64,
 ) -> Result<Vec<AdvisedNode>, SimError> {
-    if !(speed > 0.0) {
+    if speed.is_nan() || speed <= 0.0 {
         return Err(SimError::Option(format!(
             "speed must be positive, got {speed}"
         )));
