@@ -194,3 +194,45 @@ fn lambda_rules() {
         );
     }
 }
+
+#[test]
+fn a_stream_override_sets_that_streams_basis_only() {
+    use csgate::pipeline::replay::{replay, ReplayOptions};
+    use csgate::pipeline::run::{PipelineConfig, StreamOverride};
+    let dir = test_dir();
+    let log = dir.path().join("site.cslog");
+    write_log(&log, &[3, 5], 6, &[]);
+    let out = dir.path().join("record.h5");
+    let pipeline = PipelineConfig {
+        streams: vec![StreamOverride {
+            node: 5,
+            channel: None,
+            basis: Some("db4".parse().unwrap()),
+            solver: None,
+            warm_start: None,
+            method: None,
+        }],
+        ..PipelineConfig::default()
+    };
+    let opts = ReplayOptions {
+        logs: vec![log],
+        out: out.clone(),
+        pipeline,
+        limits: csgate::packet::Limits::default(),
+        keys: csgate::packet::KeyRing::new(false),
+        deflate: None,
+        config_digest: String::new(),
+        events: None,
+    };
+    let report = replay(&opts, |_, _| {}).unwrap();
+    assert_eq!(report.pipeline.windows, 12);
+    let rec = RecordReader::open(&out).unwrap();
+    // The record names each stream's basis (docs/hdf5-layout.md, `basis` attribute).
+    assert_eq!(rec.stream_meta(StreamKey::new(3, 0)).unwrap().basis, "dct");
+    assert_eq!(rec.stream_meta(StreamKey::new(5, 0)).unwrap().basis, "db4");
+    assert!(rec
+        .samples(StreamKey::new(5, 0))
+        .unwrap()
+        .iter()
+        .all(|v| v.is_finite()));
+}
