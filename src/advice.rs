@@ -17,8 +17,9 @@
 //!    the samples are noisy, and `k` is itself measured from a solution made with the current `m`.
 //! 2. **Need from quality.** A window flagged low trust (hold-out error above the trust limit,
 //!    or support beyond the phase transition for its `m`) asks for `raise_factor` times the `m`
-//!    it had: the sparsity estimate of a failed window cannot be relied on, so the advice does
-//!    not wait for it.
+//!    it had, or the need from its sparsity if that is larger: the support of a failed window
+//!    underestimates the signal's (it cannot hold more than its samples resolved), so its need
+//!    is only a lower bound, and the raise does not wait for a trustworthy estimate.
 //! 3. **Fast attack.** When the need is above the current advice by at least `min_change`, the
 //!    advice rises to it at once.
 //! 4. **Slow release.** The advice falls only after `release_windows` consecutive trusted
@@ -179,9 +180,19 @@ impl Advisor {
     /// The samples window `w` asks for, and whether the ask comes from low trust.
     pub fn need(&self, w: &WindowObservation) -> Option<(u32, bool)> {
         if w.low_trust == Some(true) {
-            let m = (f64::from(w.m) * self.config.raise_factor).ceil() as u32;
-            return Some((self.clamp(m, w.n), true));
+            let raised = (f64::from(w.m) * self.config.raise_factor).ceil() as u32;
+            // The support of a failed window is an underestimate (its solution could not hold
+            // more than its samples resolved), so the need it implies is a lower bound: taking
+            // the larger of the two reaches a much less sparse signal in one step instead of
+            // one raise per round trip to the node.
+            let from_support = self.sparsity_need(w).unwrap_or(0);
+            return Some((self.clamp(raised.max(from_support), w.n), true));
         }
+        self.sparsity_need(w).map(|m| (self.clamp(m, w.n), false))
+    }
+
+    /// `ceil(n psi(k/n) (1 + margin))` for the window's effective support `k`, unclamped.
+    fn sparsity_need(&self, w: &WindowObservation) -> Option<u32> {
         let k = w.effective_support?;
         if w.n == 0 {
             return None;
@@ -193,8 +204,7 @@ impl Advisor {
             None if k == 0 => 0.0,
             None => n,
         };
-        let m = (edge * (1.0 + self.config.margin)).ceil() as u32;
-        Some((self.clamp(m, w.n), false))
+        Some((edge * (1.0 + self.config.margin)).ceil() as u32)
     }
 
     fn clamp(&self, m: u32, n: u32) -> u32 {

@@ -169,6 +169,27 @@ async fn simulated_nodes_to_records_with_metrics_and_feed() {
         faults.delivered.len() + faults.duplicated
     );
 
+    // The trust and analytics figures appear once windows and a feature block are done
+    // (bounded by a count of scrapes, not a clock).
+    let mut analytics = String::new();
+    for _ in 0..600 {
+        analytics = http_get(http, "/metrics").await.1;
+        if analytics.contains("csgate_window_trust{") && analytics.contains("csgate_band_rms{") {
+            break;
+        }
+        tokio::time::sleep(Duration::from_millis(50)).await;
+    }
+    for name in [
+        "csgate_window_trust{",
+        "csgate_window_cv_error_ratios{",
+        "csgate_band_rms{",
+        "csgate_advice_messages_sent_total",
+    ] {
+        assert!(analytics.contains(name), "{name} missing:\n{analytics}");
+    }
+    let trust = metric(&analytics, "csgate_window_trust", None);
+    assert!(trust >= 0.0, "trust is 0 or 1 per stream");
+
     shutdown.signal();
     let report = run.await.unwrap().unwrap();
     assert!(!report.forced);
