@@ -587,6 +587,7 @@ pub fn measure_window_cost(
             method: Method::Sparse,
             warm,
             trust: Arc::new(config.trust.clone()),
+            precision: config.precision,
         };
         let started = Instant::now();
         let done = worker.run(job);

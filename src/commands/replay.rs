@@ -5,8 +5,8 @@ use clap::Args;
 use csgate::basis::BasisKind;
 use csgate::packet::{KeyRing, Limits, NodeKey};
 use csgate::pipeline::analytics::MachineEntry;
-use csgate::pipeline::reconstruct::Method;
 use csgate::pipeline::reconstruct::WarmStart;
+use csgate::pipeline::reconstruct::{Method, Precision};
 use csgate::pipeline::replay::{replay, ReplayOptions};
 use csgate::pipeline::run::PipelineConfig;
 use csgate::sim::scenario::Scenario;
@@ -51,6 +51,18 @@ pub struct ReplayArgs {
     /// The eps of the reweighting, as a fraction of the window's largest coefficient.
     #[arg(long, value_name = "FRACTION", default_value_t = 1.0)]
     pub reweight_eps: f64,
+    /// The LASSO weight lambda as a fraction of each window's lambda_max = ||A^T y||_inf
+    /// (default: the pipeline's, 0.01). Larger keeps fewer coefficients: less noise fitted, and
+    /// fewer iterations; smaller follows weak components more closely.
+    #[arg(long, value_name = "FRACTION")]
+    pub lambda_fraction: Option<f64>,
+    /// Do not tune each stream's lambda by the hold-out samples (it is tuned by default when
+    /// the trust figures are on; see docs/hdf5-layout.md, `windows.lambda`).
+    #[arg(long)]
+    pub no_tune: bool,
+    /// Working precision of the solver: f32 (default, about twice as fast) or f64.
+    #[arg(long, value_enum, default_value = "f32")]
+    pub precision: Precision,
     /// Deflate level 1-9 for the samples (default: none; noisy float data compresses little).
     #[arg(long, value_parser = clap::value_parser!(u8).range(1..=9))]
     pub deflate: Option<u8>,
@@ -111,6 +123,15 @@ pub fn run(args: ReplayArgs) -> anyhow::Result<ExitCode> {
     pipeline.method = args.method;
     pipeline.solver.reweight_rounds = args.reweight;
     pipeline.solver.reweight_eps = args.reweight_eps;
+    if let Some(f) = args.lambda_fraction {
+        anyhow::ensure!(
+            f.is_finite() && f > 0.0 && f < 1.0,
+            "--lambda-fraction must be a fraction in (0, 1), got {f}"
+        );
+        pipeline.solver.form = csgate::solver::Form::Lasso {
+            lambda: csgate::solver::LambdaRule::FractionOfMax(f),
+        };
+    }
     anyhow::ensure!(
         args.block_s.is_finite() && args.block_s > 0.0,
         "--block-s must be a positive number of seconds, got {}",
@@ -119,6 +140,8 @@ pub fn run(args: ReplayArgs) -> anyhow::Result<ExitCode> {
     pipeline.analytics.block_s = args.block_s;
     pipeline.analytics.enabled = !args.no_features;
     pipeline.trust.enabled = !args.no_trust;
+    pipeline.trust.tune_lambda = !args.no_tune;
+    pipeline.precision = args.precision;
     if let Some(path) = &args.machines {
         pipeline.analytics.machines = load_machines(path)?;
     }

@@ -5,10 +5,11 @@
 //! with the result, so any worker can take any window while the dispatcher keeps each stream's
 //! windows strictly sequential.
 
-use super::trust::{self, LowTrustReasons, TrustConfig, WindowTrust};
+use super::trust::{self, LambdaTuning, LowTrustReasons, TrustConfig, WindowTrust};
 use crate::basis::{BasisKind, BasisPlanner};
 use crate::packet::{indices, Packet};
-use crate::solver::{SolveReport, SolveSettings, Solver, WarmUse};
+use crate::real::Real;
+use crate::solver::{Form, LambdaRule, SolveReport, SolveSettings, Solver, WarmUse};
 use std::collections::HashMap;
 use std::sync::Arc;
 use std::time::Instant;
@@ -22,6 +23,32 @@ use std::time::Instant;
 pub struct WarmState {
     /// LASSO coefficients of the previous window (before the debiasing refit).
     pub coefficients: Option<Vec<f64>>,
+    /// The stream's tuned LASSO weight (see [`trust::LambdaTuning`]).
+    pub lambda: LambdaTuning,
+}
+
+/// Working precision of the solver.
+#[derive(
+    Debug,
+    Clone,
+    Copy,
+    PartialEq,
+    Eq,
+    Default,
+    serde::Serialize,
+    serde::Deserialize,
+    clap::ValueEnum,
+)]
+#[serde(rename_all = "snake_case")]
+pub enum Precision {
+    /// Single precision: half the memory traffic and twice the SIMD width of `f64`, so the
+    /// transforms take about half the time. The samples arrive and are recorded as f32, and
+    /// the solver stops at a relative duality gap of 1e-4, far above f32 rounding (6e-8);
+    /// `BENCHMARKS.md` has the measured SNR cost.
+    #[default]
+    F32,
+    /// Double precision, the reference the tests check against published values.
+    F64,
 }
 
 /// How the previous window's solution seeds the next solve.
@@ -124,6 +151,8 @@ pub struct ReconstructJob {
     pub warm: WarmState,
     /// Trust settings.
     pub trust: Arc<TrustConfig>,
+    /// Working precision of the solver.
+    pub precision: Precision,
 }
 
 /// The outcome of one job.
@@ -147,19 +176,64 @@ pub struct ReconstructedWindow {
     pub warm: WarmState,
 }
 
-/// Per-worker state: a solver (with its planned basis and buffers) per (basis, length).
+/// Solvers of one precision, one per (basis, length), planned on first use.
 #[derive(Debug)]
-pub struct WorkerState {
-    planner: Arc<BasisPlanner<f64>>,
-    solvers: HashMap<(BasisKind, usize), Solver<f64>>,
+struct SolverSet<T: Real> {
+    planner: Arc<BasisPlanner<T>>,
+    solvers: HashMap<(BasisKind, usize), Solver<T>>,
 }
 
-impl WorkerState {
-    /// A worker sharing `planner` with the other workers.
-    pub fn new(planner: Arc<BasisPlanner<f64>>) -> Self {
+impl<T: Real> SolverSet<T> {
+    fn new(planner: Arc<BasisPlanner<T>>) -> Self {
         Self {
             planner,
             solvers: HashMap::new(),
+        }
+    }
+
+    #[allow(clippy::type_complexity)]
+    fn solve(
+        &mut self,
+        indices: &[u32],
+        y: &[f64],
+        basis: BasisKind,
+        n: usize,
+        settings: &SolveSettings,
+        start: Option<&[f64]>,
+    ) -> Result<(Vec<f64>, Vec<f64>, SolveReport), String> {
+        let solver = match self.solvers.entry((basis, n)) {
+            std::collections::hash_map::Entry::Occupied(e) => e.into_mut(),
+            std::collections::hash_map::Entry::Vacant(v) => {
+                let b = self.planner.plan(basis, n).map_err(|e| e.to_string())?;
+                v.insert(Solver::new(b))
+            }
+        };
+        let y: Vec<T> = y.iter().map(|&v| T::of(v)).collect();
+        let start: Option<Vec<T>> = start.map(|s| s.iter().map(|&v| T::of(v)).collect());
+        let sol = solver
+            .solve(indices, &y, settings, start.as_deref())
+            .map_err(|e| e.to_string())?;
+        let back = |v: Vec<T>| v.into_iter().map(|x| x.to_f64_()).collect::<Vec<f64>>();
+        Ok((back(sol.signal), back(sol.lasso_coefficients), sol.report))
+    }
+}
+
+/// Per-worker state: a solver (with its planned basis and buffers) per (precision, basis,
+/// length).
+#[derive(Debug)]
+pub struct WorkerState {
+    f64: SolverSet<f64>,
+    f32: SolverSet<f32>,
+}
+
+impl WorkerState {
+    /// A worker sharing `planner` (double precision) with the other workers; its
+    /// single-precision bases are planned by the worker itself (planning is cheap and happens
+    /// once per length).
+    pub fn new(planner: Arc<BasisPlanner<f64>>) -> Self {
+        Self {
+            f64: SolverSet::new(planner),
+            f32: SolverSet::new(Arc::new(BasisPlanner::new())),
         }
     }
 
@@ -187,6 +261,7 @@ impl WorkerState {
             WarmStart::Cold => None,
             WarmStart::Previous => warm.coefficients.take().filter(|c| c.len() == n),
         };
+        let precision = job.precision;
         // The hold-out solve first, warm from the previous window; the full solve then starts
         // from its solution, so it only has to absorb the held-out samples (see trust.rs).
         let m = y.len();
@@ -195,8 +270,30 @@ impl WorkerState {
         } else {
             None
         };
+        // The stream's LASSO weight: tuned by the hold-out when the solver takes a fraction of
+        // lambda_max and a hold-out is made (trust.rs, "Tuning lambda").
+        let tuned = match (&job.settings.form, holdout) {
+            (
+                Form::Lasso {
+                    lambda: LambdaRule::FractionOfMax(f0),
+                },
+                Some(_),
+            ) if job.trust.tune_lambda => Some(warm.lambda.fraction.unwrap_or(*f0)),
+            _ => None,
+        };
+        let with_fraction = |settings: &SolveSettings, f: f64| SolveSettings {
+            form: Form::Lasso {
+                lambda: LambdaRule::FractionOfMax(f),
+            },
+            ..settings.clone()
+        };
+        let base_settings: std::borrow::Cow<'_, SolveSettings> = match tuned {
+            Some(f) => std::borrow::Cow::Owned(with_fraction(&job.settings, f)),
+            None => std::borrow::Cow::Borrowed(&*job.settings),
+        };
         let mut trust_time_us = 0.0;
         let mut held = None;
+        let mut probe_outcome = None;
         let mut start = previous;
         if let Some(h) = holdout {
             let t = Instant::now();
@@ -218,10 +315,18 @@ impl WorkerState {
             // The estimate needs the hold-out solution only to a fraction of the error it
             // measures, so its gap tolerance is relaxed to 1e-3 (the objective within 0.1%).
             let holdout_settings = SolveSettings {
-                gap_tol: job.settings.gap_tol.max(1e-3),
-                ..(*job.settings).clone()
+                gap_tol: base_settings.gap_tol.max(1e-3),
+                ..(*base_settings).clone()
+            };
+            let y_h: Vec<f64> = out.iter().map(|&p| y[p as usize]).collect();
+            let y_norm = y.iter().map(|v| v * v).sum::<f64>().sqrt();
+            let predict = |signal: &[f64]| -> Vec<f64> {
+                out.iter()
+                    .map(|&p| signal[job.packet.indices[p as usize] as usize])
+                    .collect()
             };
             if let Ok((signal, coeffs, report)) = self.solve(
+                precision,
                 &tr_idx,
                 &tr_y,
                 job.basis,
@@ -229,17 +334,42 @@ impl WorkerState {
                 &holdout_settings,
                 start.as_deref(),
             ) {
-                let y_h: Vec<f64> = out.iter().map(|&p| y[p as usize]).collect();
-                let pred: Vec<f64> = out
-                    .iter()
-                    .map(|&p| signal[job.packet.indices[p as usize] as usize])
-                    .collect();
-                let y_norm = y.iter().map(|v| v * v).sum::<f64>().sqrt();
-                held = Some((
-                    trust::cv_error(&y_h, &pred, y_norm, m),
-                    h,
-                    report.iterations,
-                ));
+                let cv = trust::cv_error(&y_h, &predict(&signal), y_norm, m);
+                let mut iterations = report.iterations;
+                if let Some(f) = tuned {
+                    if let Some(f_probe) = warm.lambda.probe(&job.trust, f) {
+                        // The same held-out samples at the probed weight, warm from the
+                        // first solve (a nearby problem): a paired comparison.
+                        let probe_settings = SolveSettings {
+                            warm_use: WarmUse::Coefficients,
+                            ..with_fraction(&holdout_settings, f_probe)
+                        };
+                        if let Ok((p_signal, _, p_report)) = self.solve(
+                            precision,
+                            &tr_idx,
+                            &tr_y,
+                            job.basis,
+                            n,
+                            &probe_settings,
+                            Some(&coeffs),
+                        ) {
+                            let p_cv = trust::cv_error(&y_h, &predict(&p_signal), y_norm, m);
+                            iterations += p_report.iterations;
+                            // Parsimony: a larger weight (sparser, fewer iterations)
+                            // wins a tie within the tolerance, a smaller one must win
+                            // clearly (the "one standard error" habit of cross-validation,
+                            // common practice).
+                            let tol = job.trust.tune_tolerance;
+                            let won = if f_probe > f {
+                                p_cv <= cv * (1.0 + tol)
+                            } else {
+                                p_cv < cv * (1.0 - tol)
+                            };
+                            probe_outcome = Some((f_probe, won));
+                        }
+                    }
+                }
+                held = Some((cv, h, iterations));
                 start = Some(coeffs);
             }
             trust_time_us = t.elapsed().as_secs_f64() * 1e6;
@@ -249,12 +379,13 @@ impl WorkerState {
         let final_settings = if held.is_some() {
             std::borrow::Cow::Owned(SolveSettings {
                 warm_use: WarmUse::Coefficients,
-                ..(*job.settings).clone()
+                ..(*base_settings).clone()
             })
         } else {
-            std::borrow::Cow::Borrowed(&*job.settings)
+            base_settings
         };
         let outcome = self.solve(
+            precision,
             &job.packet.indices,
             &y,
             job.basis,
@@ -262,6 +393,9 @@ impl WorkerState {
             &final_settings,
             start.as_deref(),
         );
+        if let (Some(f), Some(_)) = (tuned, &held) {
+            warm.lambda.record(&job.trust, f, probe_outcome);
+        }
         let mut trust_figures = None;
         if let (Some((cv, h, iterations)), Ok((_, coeffs, _))) = (held, &outcome) {
             let cfg = &job.trust;
@@ -278,6 +412,7 @@ impl WorkerState {
                     phase_transition: cfg.phase_transition && (m as f64) < need,
                 },
                 holdout_iterations: iterations,
+                lambda_fraction: tuned,
             });
         }
         let outcome = match outcome {
@@ -302,9 +437,10 @@ impl WorkerState {
         }
     }
 
-    #[allow(clippy::type_complexity)]
+    #[allow(clippy::type_complexity, clippy::too_many_arguments)]
     fn solve(
         &mut self,
+        precision: Precision,
         indices: &[u32],
         y: &[f64],
         basis: BasisKind,
@@ -312,16 +448,9 @@ impl WorkerState {
         settings: &SolveSettings,
         start: Option<&[f64]>,
     ) -> Result<(Vec<f64>, Vec<f64>, SolveReport), String> {
-        let solver = match self.solvers.entry((basis, n)) {
-            std::collections::hash_map::Entry::Occupied(e) => e.into_mut(),
-            std::collections::hash_map::Entry::Vacant(v) => {
-                let b = self.planner.plan(basis, n).map_err(|e| e.to_string())?;
-                v.insert(Solver::new(b))
-            }
-        };
-        let sol = solver
-            .solve(indices, y, settings, start)
-            .map_err(|e| e.to_string())?;
-        Ok((sol.signal, sol.lasso_coefficients, sol.report))
+        match precision {
+            Precision::F64 => self.f64.solve(indices, y, basis, n, settings, start),
+            Precision::F32 => self.f32.solve(indices, y, basis, n, settings, start),
+        }
     }
 }

@@ -22,7 +22,9 @@
 use super::analytics::{self, AnalyticsConfig, AnalyticsMsg, AnalyticsStats};
 use super::events::{EventError, EventSink};
 use super::pool::WorkerPool;
-use super::reconstruct::{ReconstructJob, ReconstructedWindow, WarmStart, WarmState, WorkerState};
+use super::reconstruct::{
+    Precision, ReconstructJob, ReconstructedWindow, WarmStart, WarmState, WorkerState,
+};
 use super::trust::TrustConfig;
 use crate::basis::{BasisKind, BasisPlanner};
 use crate::packet::{Packet, StreamId};
@@ -56,8 +58,13 @@ pub struct PipelineConfig {
     /// mix (n = 1024, m/n = 0.25, noise-free) the stitched SNR was 14.7 dB with the universal
     /// threshold, 23.3 dB at 0.05 lambda_max, 32.8 dB at 0.01 and 36.0 dB at 0.002 (2.4x the
     /// iterations of 0.01). Measured with `cargo test --release --test tests
-    /// pipeline::lambda_rules -- --ignored --nocapture`.
+    /// pipeline::lambda_rules -- --ignored --nocapture`. On noisy machine streams the best
+    /// fraction is larger (0.02-0.04 on the demo site), so with the trust figures on each
+    /// stream tunes its own fraction from this start by the hold-out error
+    /// ([`TrustConfig::tune_lambda`]).
     pub solver: SolveSettings,
+    /// Working precision of the solver. Default f32 (see [`Precision`]).
+    pub precision: Precision,
     /// Warm-start policy. Default: the previous window's solution.
     pub warm_start: WarmStart,
     /// Reconstruction method. Default: sparse recovery.
@@ -151,6 +158,7 @@ impl Default for PipelineConfig {
                 },
                 ..SolveSettings::default()
             },
+            precision: Precision::default(),
             warm_start: WarmStart::default(),
             method: Default::default(),
             reorder: ReorderConfig::default(),
@@ -808,6 +816,7 @@ impl Dispatcher<'_> {
                         method: self.slots[s].method,
                         warm: std::mem::take(&mut self.slots[s].warm),
                         trust: Arc::clone(&self.trust),
+                        precision: self.config.precision,
                     };
                     if self.pool.submit(job).is_err() {
                         return Err(PipelineError::SinkStopped);

@@ -28,7 +28,71 @@
 //! than it had is flagged. Random-row DCT sampling follows the Gaussian transition closely
 //! (Donoho & Tanner 2009; CHECK-VALUES 6.2).
 
+//!
+//! # Tuning lambda by the same hold-out
+//! The LASSO weight that reconstructs a stream best depends on how much of its signal is
+//! sparse and how much is broadband noise: on noise-free tones the smallest `lambda` wins,
+//! on a noisy machine a larger one stops the solver fitting the noise (and takes fewer
+//! iterations). Hold-out prediction error is the classical way to choose such a parameter
+//! (cross-validation, common practice; Ward 2009 also uses the hold-out error to choose
+//! between reconstructions, recalled from memory). Every
+//! `tune_every`-th window of a stream solves the hold-out problem a second time at
+//! `tune_step` times (or divided by it, alternately) the stream's current fraction of
+//! `lambda_max`, warm from the first solve, on the *same* held-out samples: a paired
+//! comparison, so the window's content cancels out. When the probe predicts the held-out
+//! samples better, the stream's fraction moves half-way (in log scale) towards it; within
+//! `tune_tolerance` the larger weight wins (sparser and cheaper at no measured loss). The
+//! window itself is always reconstructed at the stream's current fraction; only later
+//! windows use the new one. See [`LambdaTuning`].
+
 use serde::{Deserialize, Serialize};
+
+/// The tuning state of one stream's LASSO weight (carried from window to window).
+#[derive(Debug, Clone, Copy, PartialEq, Default)]
+pub struct LambdaTuning {
+    /// The stream's fraction of `lambda_max` (`None` before its first window).
+    pub fraction: Option<f64>,
+    /// Windows of the stream seen with a hold-out.
+    pub windows: u64,
+    /// Probes won and lost (for reports).
+    pub probes_won: u64,
+    /// Probes lost.
+    pub probes_lost: u64,
+}
+
+impl LambdaTuning {
+    /// The fraction to probe on this window, if it is a probe window.
+    pub fn probe(&self, cfg: &TrustConfig, current: f64) -> Option<f64> {
+        let every = cfg.tune_every.max(1) as u64;
+        if !cfg.tune_lambda || self.windows % every != every - 1 {
+            return None;
+        }
+        // Alternate up and down so neither direction is favoured.
+        let up = (self.windows / every) % 2 == 0;
+        let f = if up {
+            current * cfg.tune_step
+        } else {
+            current / cfg.tune_step
+        };
+        let f = f.clamp(cfg.tune_min_fraction, cfg.tune_max_fraction);
+        (f != current).then_some(f)
+    }
+
+    /// Records the outcome of a window: the probe (if any) and whether it predicted better.
+    pub fn record(&mut self, cfg: &TrustConfig, current: f64, probe: Option<(f64, bool)>) {
+        self.windows += 1;
+        let mut next = current;
+        if let Some((f, won)) = probe {
+            if won {
+                self.probes_won += 1;
+                next = (current * f).sqrt();
+            } else {
+                self.probes_lost += 1;
+            }
+        }
+        self.fraction = Some(next.clamp(cfg.tune_min_fraction, cfg.tune_max_fraction));
+    }
+}
 
 /// Settings of the per-window trust figures (serde; every field has a documented default).
 #[derive(Debug, Clone, PartialEq, Serialize, Deserialize)]
@@ -54,6 +118,23 @@ pub struct TrustConfig {
     /// `lambda` the LASSO keeps hundreds of tiny coefficients that fit noise; counting those
     /// would flag nearly every noisy window. 1.0 counts every non-zero coefficient.
     pub support_energy: f64,
+    /// Tune each stream's LASSO weight by the same hold-out (see [`LambdaTuning`]). Default on.
+    /// Applies to streams whose solver uses `lambda = fraction_of_max`; the configured
+    /// fraction is where a stream starts.
+    pub tune_lambda: bool,
+    /// A tuning probe every this many windows of a stream. Default 4: one more hold-out solve
+    /// per four windows, warm from the first.
+    pub tune_every: usize,
+    /// Factor between the stream's fraction and the probed one. Default 1.5; the stream moves
+    /// by half of it (in log scale) when the probe predicts the held-out samples better.
+    pub tune_step: f64,
+    /// Range the tuned fraction stays in. Default 0.002 to 0.2.
+    pub tune_min_fraction: f64,
+    /// Upper end of that range.
+    pub tune_max_fraction: f64,
+    /// Relative difference of `cv_error` below which a probe counts as a tie. Default 0.01.
+    /// A tie goes to the larger weight: sparser, cheaper, and no worse on the held-out samples.
+    pub tune_tolerance: f64,
 }
 
 impl Default for TrustConfig {
@@ -65,6 +146,12 @@ impl Default for TrustConfig {
             max_cv_error: 0.3,
             phase_transition: true,
             support_energy: 0.99,
+            tune_lambda: true,
+            tune_every: 4,
+            tune_step: 1.5,
+            tune_min_fraction: 0.002,
+            tune_max_fraction: 0.2,
+            tune_tolerance: 0.01,
         }
     }
 }
@@ -92,6 +179,31 @@ impl TrustConfig {
         }
         if self.min_holdout == 0 {
             return Err("trust.min_holdout must be at least 1".into());
+        }
+        if !(self.tune_tolerance.is_finite() && (0.0..0.5).contains(&self.tune_tolerance)) {
+            return Err(format!(
+                "trust.tune_tolerance must be in [0, 0.5), got {}",
+                self.tune_tolerance
+            ));
+        }
+        if self.tune_every == 0 {
+            return Err("trust.tune_every must be at least 1".into());
+        }
+        if !(self.tune_step.is_finite() && self.tune_step > 1.0) {
+            return Err(format!(
+                "trust.tune_step must be greater than 1, got {}",
+                self.tune_step
+            ));
+        }
+        if !(self.tune_min_fraction > 0.0
+            && self.tune_min_fraction < self.tune_max_fraction
+            && self.tune_max_fraction < 1.0)
+        {
+            return Err(format!(
+                "trust.tune_min_fraction and tune_max_fraction must satisfy 0 < min < max < 1, \
+                 got {} and {}",
+                self.tune_min_fraction, self.tune_max_fraction
+            ));
         }
         Ok(())
     }
@@ -210,8 +322,10 @@ pub struct WindowTrust {
     pub min_measurements: f64,
     /// Why it is low trust, if it is.
     pub reasons: LowTrustReasons,
-    /// FISTA iterations of the hold-out solve (the extra cost).
+    /// FISTA iterations of the hold-out solve (the extra cost), with the tuning probe's.
     pub holdout_iterations: usize,
+    /// The fraction of `lambda_max` the window was reconstructed with, when tuned.
+    pub lambda_fraction: Option<f64>,
 }
 
 impl WindowTrust {
@@ -263,6 +377,51 @@ mod tests {
         let e = cv_error(&y_h, &p, (16.0f64).sqrt(), 16);
         assert!((e - 0.1).abs() < 1e-12, "{e}");
         assert!(cv_error(&[], &[], 1.0, 4).is_nan());
+    }
+
+    #[test]
+    fn tuning_probes_alternate_and_moves_half_way() {
+        let cfg = TrustConfig::default();
+        let mut t = LambdaTuning::default();
+        // Windows 0..2 are not probes; window 3 probes up, window 7 down.
+        for _ in 0..3 {
+            assert_eq!(t.probe(&cfg, 0.01), None);
+            t.record(&cfg, 0.01, None);
+        }
+        let up = t.probe(&cfg, 0.01).unwrap();
+        assert!((up - 0.015).abs() < 1e-12);
+        t.record(&cfg, 0.01, Some((up, true)));
+        // Geometric mean of 0.01 and 0.015.
+        let f = t.fraction.unwrap();
+        assert!((f - (0.01f64 * 0.015).sqrt()).abs() < 1e-12);
+        for _ in 0..3 {
+            t.record(&cfg, f, None);
+        }
+        let down = t.probe(&cfg, f).unwrap();
+        assert!((down - f / 1.5).abs() < 1e-12);
+        t.record(&cfg, f, Some((down, false)));
+        assert_eq!(t.fraction, Some(f));
+        assert_eq!((t.probes_won, t.probes_lost), (1, 1));
+        // Bounds hold, and a probe clamped to the current value is no probe.
+        let mut edge = LambdaTuning {
+            windows: 3,
+            ..LambdaTuning::default()
+        };
+        assert_eq!(edge.probe(&cfg, cfg.tune_max_fraction), None);
+        edge.record(&cfg, 0.5, None);
+        assert_eq!(edge.fraction, Some(cfg.tune_max_fraction));
+        let off = TrustConfig {
+            tune_lambda: false,
+            ..TrustConfig::default()
+        };
+        assert_eq!(
+            LambdaTuning {
+                windows: 3,
+                ..LambdaTuning::default()
+            }
+            .probe(&off, 0.01),
+            None
+        );
     }
 
     #[test]
