@@ -505,7 +505,13 @@ fn config_case(rng: &mut FuzzRng) -> CaseResult {
     }
 }
 
-fn record_case(rng: &mut FuzzRng) -> CaseResult {
+/// The record file that case `seed` of the `record` target opens (a small valid record,
+/// usually damaged), e.g. to reproduce a crash of the HDF5 library outside the fuzzer.
+pub fn record_case_input(seed: u64) -> Result<Vec<u8>, String> {
+    record_bytes(&mut FuzzRng::new(seed)).map(|(b, _)| b)
+}
+
+fn record_bytes(rng: &mut FuzzRng) -> Result<(Vec<u8>, bool), String> {
     let base = record::base()?;
     let mut b = base.to_vec();
     let mutated = !rng.one_in(16);
@@ -528,6 +534,11 @@ fn record_case(rng: &mut FuzzRng) -> CaseResult {
             }
         }
     }
+    Ok((b, mutated))
+}
+
+fn record_case(rng: &mut FuzzRng) -> CaseResult {
+    let (b, mutated) = record_bytes(rng)?;
     let dir = tempfile::tempdir().map_err(|e| format!("temp folder: {e}"))?;
     let path = dir.path().join("mutated.h5");
     std::fs::write(&path, &b).map_err(|e| format!("temp file: {e}"))?;
