@@ -675,14 +675,27 @@ async fn outage_and_recovery(dir: &Path, read_only: bool) {
     assert!(flushed, "the record was never flushed");
 
     breaker.set(true);
+    // The writer notices at its next write or flush (a read-only folder: at the next index
+    // update); keep the node sending until it has.
+    let mut noticed = false;
+    for _ in 0..400 {
+        node.send_windows(&batch(seq, seq + 1), None).await;
+        seq += 1;
+        if metric(&gw.metrics().await, "csgate_record_writable", None) == 0.0 {
+            noticed = true;
+            break;
+        }
+        tokio::time::sleep(Duration::from_millis(20)).await;
+    }
+    assert!(noticed, "the write error was never noticed");
     node.send_windows(&batch(seq, seq + 40), None).await;
     seq += 40;
     let text = gw
-        .wait_for("the outage reported", |t| {
-            metric(t, "csgate_record_writable", None) == 0.0
-                && metric(t, "csgate_record_dropped_rows_total", None) > 0.0
+        .wait_for("the outage counted", |t| {
+            metric(t, "csgate_record_dropped_rows_total", None) > 0.0
         })
         .await;
+    assert_eq!(metric(&text, "csgate_record_writable", None), 0.0);
     assert_eq!(metric(&text, "csgate_record_write_errors_total", None), 1.0);
     assert!(metric(&text, "csgate_record_dropped_samples_total", None) > 0.0);
     let (_, health) = http_get(gw.http, "/health").await;
