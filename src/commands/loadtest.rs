@@ -22,9 +22,11 @@ them with the peak RSS (--json: one JSON object). Each node keeps at most --in-f
 unacknowledged and --buffer windows waiting; a node that cannot send drops its oldest windows and \
 counts them. --corrupt flips one bit in that share of frames (the gateway must reject them and \
 close the connection; the node reconnects). Exit status 1 when a book does not balance.\n\n\
-The defaults (100 nodes of 2560 Hz, n = 1024, hop 512: 500 windows/s) fit the 2-core \
-development machine with room to spare; full-rate nodes (--sample-rate 25600 --n 4096 --hop 2048 \
---m 1024: 1250 windows/s for 100 nodes) exceed it, and show back-pressure at work instead."
+The defaults (100 nodes of 1280 Hz, n = 1024, hop 512, m = 256: 250 windows/s) fit the \
+shared 2-core development machine with room to spare (BENCHMARKS.md section 8); full-rate nodes \
+(--sample-rate 25600 --n 4096: 1250 windows/s for 100 nodes) exceed it several times over and show \
+back-pressure at work instead: the queues fill to their bounds, the nodes' buffers overflow, and \
+every window they drop is counted."
 )]
 pub struct LoadtestArgs {
     /// Simulated nodes (one connection and one channel each).
@@ -34,7 +36,7 @@ pub struct LoadtestArgs {
     #[arg(long, default_value_t = 60.0, value_name = "SECONDS")]
     pub duration: f64,
     /// Sample rate of each node's ADC grid, Hz.
-    #[arg(long, default_value_t = 2560.0, value_name = "HZ")]
+    #[arg(long, default_value_t = 1280.0, value_name = "HZ")]
     pub sample_rate: f64,
     /// Window length n.
     #[arg(long, default_value_t = 1024, value_name = "N")]

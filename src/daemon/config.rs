@@ -42,6 +42,11 @@ pub mod defaults {
     /// often: soon enough that little more is lost once space returns, seldom enough that a
     /// failing disk is not hammered and the log gets one line per try.
     pub const WRITE_RETRY_MS: u64 = 10_000;
+    /// A new stream waits this long for others before the next record file is started for
+    /// it: nodes that connect together (after a restart of the gateway, or of a site's power)
+    /// then share one new file instead of costing one each; the delay is of the order of the
+    /// flush interval, so readers and a crash see little difference.
+    pub const NEW_STREAM_WAIT_MS: u64 = 2_000;
 }
 
 /// Errors of loading a configuration. Every message names the file and, where there is one,
@@ -247,6 +252,10 @@ pub struct RecordSection {
     /// After a write error, try a new record file this often, milliseconds; meanwhile what
     /// arrives is counted and discarded. Default 10000.
     pub write_retry_ms: u64,
+    /// A stream that appears while a file is open waits this long, milliseconds, for other
+    /// new streams before the next file is started for them all; 0 starts it at once.
+    /// Default 2000.
+    pub new_stream_wait_ms: u64,
 }
 
 impl Default for RecordSection {
@@ -260,6 +269,7 @@ impl Default for RecordSection {
             deflate: 0,
             queue_capacity: defaults::RECORD_QUEUE,
             write_retry_ms: defaults::WRITE_RETRY_MS,
+            new_stream_wait_ms: defaults::NEW_STREAM_WAIT_MS,
         }
     }
 }
@@ -655,6 +665,7 @@ impl GatewayConfig {
         c.rotate_after = (r.rotate_after_s > 0).then(|| Duration::from_secs(r.rotate_after_s));
         c.rotate_bytes = (r.rotate_mib > 0).then_some(r.rotate_mib << 20);
         c.retry_after = Some(Duration::from_millis(r.write_retry_ms));
+        c.new_stream_wait = Duration::from_millis(r.new_stream_wait_ms);
         c
     }
 

@@ -175,8 +175,12 @@ pub struct MetricSources {
     pub record_bytes: Arc<AtomicU64>,
     /// Write-error figures of the record writer.
     pub record: Arc<crate::store::SinkLive>,
-    /// Packets waiting between the sockets and the pipeline.
+    /// Packets waiting between the sockets and the pipeline, as the forwarder last saw them.
     pub packet_queue: Arc<AtomicU64>,
+    /// That channel itself, read at each scrape (the forwarder's figure goes stale while it
+    /// waits for a full pipeline, which is when the figure matters). A weak handle: it does
+    /// not keep the channel open.
+    pub packet_channel: Option<tokio::sync::mpsc::WeakSender<crate::packet::Packet>>,
     /// Capacity of that queue.
     pub packet_queue_capacity: usize,
     /// Solver queue limit.
@@ -490,9 +494,13 @@ impl GatewayMetrics {
         set(&g.windows_lost, p.lost_windows.load(Relaxed));
         set(&g.windows_failed, p.failed_windows.load(Relaxed));
         g.streams.set(p.streams.load(Relaxed) as i64);
+        let packets = match s.packet_channel.as_ref().and_then(|w| w.upgrade()) {
+            Some(tx) => (tx.max_capacity() - tx.capacity()) as u64,
+            None => s.packet_queue.load(Relaxed),
+        };
         g.queue_depth
             .get_or_create(&queue("packets"))
-            .set(s.packet_queue.load(Relaxed) as i64);
+            .set(packets as i64);
         g.queue_depth
             .get_or_create(&queue("solver"))
             .set(p.queued.load(Relaxed) as i64);

@@ -269,6 +269,7 @@ impl Gateway {
         // Ingest and forwarder.
         let ingest_config = config.ingest_config();
         let (ing_tx, ing_rx) = mpsc::channel::<Packet>(config.ingest.channel_capacity);
+        let ing_tx_weak = ing_tx.downgrade();
         let drain_token = shutdown.drain.clone();
         let mut ingest_task = tokio::spawn(tcp::run_advised(
             ingest,
@@ -294,6 +295,7 @@ impl Gateway {
             record_bytes: Arc::clone(&record_bytes),
             record: Arc::clone(&record_live),
             packet_queue: Arc::clone(&packet_queue),
+            packet_channel: Some(ing_tx_weak),
             packet_queue_capacity: config.ingest.channel_capacity,
             solver_queue_capacity: config.pipeline.max_queued_windows,
             workers: config.pipeline.workers,

@@ -123,7 +123,17 @@ pub struct SinkConfig {
     pub live: Arc<SinkLive>,
     /// Fault injection for tests ([`WriteFault`]). Default: off.
     pub write_fault: WriteFault,
+    /// How long a stream that appears while a file is open waits for others before the sink
+    /// starts the next file for it (HDF5 cannot add a stream to a file in SWMR mode). Its
+    /// messages are held in memory meanwhile, at most [`MAX_HELD_MSGS`]. Zero (the default)
+    /// starts the next file at once. The gateway waits: a hundred nodes connecting within a
+    /// second otherwise cost a hundred files, each with every stream known so far, and
+    /// creating them kept the writer busy for tens of seconds (found by `csgate loadtest`).
+    pub new_stream_wait: Duration,
 }
+
+/// Most messages held for streams waiting for the next file; one more starts it at once.
+pub const MAX_HELD_MSGS: usize = 4096;
 
 impl SinkConfig {
     /// Defaults for a record folder.
@@ -142,6 +152,7 @@ impl SinkConfig {
             retry_after: None,
             live: Default::default(),
             write_fault: WriteFault::default(),
+            new_stream_wait: Duration::ZERO,
         }
     }
 }
@@ -372,6 +383,10 @@ struct SinkState {
     next_seq: u32,
     stats: SinkStats,
     outage: Option<Outage>,
+    /// Streams whose messages wait for the next file, since when, and their messages in order.
+    waiting: std::collections::BTreeSet<StreamKey>,
+    waiting_since: Option<Instant>,
+    held: Vec<RecordMsg>,
 }
 
 impl SinkState {
@@ -407,16 +422,22 @@ impl SinkState {
             next_seq,
             stats: SinkStats::default(),
             outage: None,
+            waiting: Default::default(),
+            waiting_since: None,
+            held: Vec::new(),
         })
     }
 
     fn run(&mut self, rx: &mpsc::Receiver<RecordMsg>) -> Result<(), StoreError> {
         let mut last_flush = Instant::now();
         loop {
-            let wait = self
+            let mut wait = self
                 .config
                 .flush_interval
                 .saturating_sub(last_flush.elapsed());
+            if let Some(since) = self.waiting_since {
+                wait = wait.min(self.config.new_stream_wait.saturating_sub(since.elapsed()));
+            }
             match rx.recv_timeout(wait) {
                 Ok(RecordMsg::Shutdown) | Err(RecvTimeoutError::Disconnected) => return Ok(()),
                 Ok(RecordMsg::Flush) => {
@@ -426,6 +447,13 @@ impl SinkState {
                 }
                 Ok(msg) => self.accept(msg)?,
                 Err(RecvTimeoutError::Timeout) => {}
+            }
+            if self
+                .waiting_since
+                .is_some_and(|t| t.elapsed() >= self.config.new_stream_wait)
+            {
+                let r = self.start_next_file();
+                self.on_error(r)?;
             }
             if last_flush.elapsed() >= self.config.flush_interval {
                 let r = self.flush();
@@ -462,6 +490,13 @@ impl SinkState {
         self.config.live.write_errors.fetch_add(1, Relaxed);
         self.config.live.failing.store(true, Relaxed);
         let abandoned = self.abandon_current();
+        // Messages waiting for the next file are lost with it.
+        self.waiting.clear();
+        self.waiting_since = None;
+        for msg in std::mem::take(&mut self.held) {
+            let d = Dropped::of(&msg);
+            self.count_dropped(d);
+        }
         tracing::error!(
             error = %err,
             abandoned = abandoned.as_deref().unwrap_or("none"),
@@ -608,6 +643,14 @@ impl SinkState {
                          since the outage began is not recorded"
                     );
                 }
+                if self.waiting_since.is_some() {
+                    if let Err(e) = self.start_next_file() {
+                        self.stats.errors += 1;
+                        tracing::error!(error = %e, "record writer stopped");
+                        let _ = self.close_current(close_reason::SHUTDOWN);
+                        return Err(e);
+                    }
+                }
                 self.close_current(close_reason::SHUTDOWN)?;
                 Ok(self.stats)
             }
@@ -650,13 +693,27 @@ impl SinkState {
                         "stream metadata changed; rotating"
                     );
                 }
-                self.close_current(close_reason::ROTATED)?;
+                if self.config.new_stream_wait.is_zero() {
+                    self.close_current(close_reason::ROTATED)?;
+                } else {
+                    // Hold this stream's messages for a while: other new streams may follow,
+                    // and one new file can take them all.
+                    self.waiting.insert(key);
+                    self.waiting_since.get_or_insert_with(Instant::now);
+                }
             }
             return Ok(());
         }
         let Some(key) = msg_stream(&msg) else {
             return Ok(());
         };
+        if self.waiting.contains(&key) {
+            self.held.push(msg);
+            if self.held.len() > MAX_HELD_MSGS {
+                self.start_next_file()?;
+            }
+            return Ok(());
+        }
         if !self.streams.contains_key(&key) {
             self.stats.unknown_stream_msgs += 1;
             tracing::warn!(
@@ -668,7 +725,12 @@ impl SinkState {
         }
         self.config.write_fault.check(&self.config.folder)?;
         if matches!(msg, RecordMsg::Samples { .. }) && self.rotation_due() {
-            self.close_current(close_reason::ROTATED)?;
+            if self.waiting_since.is_some() {
+                // The next file takes the waiting streams too.
+                self.start_next_file()?;
+            } else {
+                self.close_current(close_reason::ROTATED)?;
+            }
         }
         let file = self.ensure_open()?;
         let writer = &mut file.writer;
@@ -694,6 +756,25 @@ impl SinkState {
             RecordMsg::Peak { row, .. } => writer.append_peak(key, row)?,
             RecordMsg::Indicator { row, .. } => writer.append_indicator(key, row)?,
             RecordMsg::OpenStream(_) | RecordMsg::Flush | RecordMsg::Shutdown => {}
+        }
+        Ok(())
+    }
+
+    /// Closes the current file and writes the held messages of the waiting streams, which
+    /// opens the next file with every known stream.
+    fn start_next_file(&mut self) -> Result<(), StoreError> {
+        self.waiting_since = None;
+        self.waiting.clear();
+        self.close_current(close_reason::ROTATED)?;
+        let mut msgs = std::mem::take(&mut self.held).into_iter();
+        while let Some(msg) = msgs.next() {
+            let d = Dropped::of(&msg);
+            if let Err(e) = self.handle(msg) {
+                // This one is lost; the rest stay held for the caller to count.
+                self.count_dropped(d);
+                self.held.extend(msgs);
+                return Err(e);
+            }
         }
         Ok(())
     }
