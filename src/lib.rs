@@ -30,6 +30,8 @@
 //! - [`inspect`] (feature `hdf5-store`): summary and PNG plots of a record (`csgate inspect`).
 //! - [`advice`]: sampling advice to nodes (samples per window from each stream's sparsity and
 //!   trust) and the board the ingest sends it from.
+//! - [`loadtest`] (feature `hdf5-store`): the bounded load test of `csgate loadtest` (simulated
+//!   nodes at real-time pace into an in-process gateway on loopback, with the books balanced).
 //! - [`fuzz`] (feature `hdf5-store`): seeded mutation fuzzing of every input decoder (frames,
 //!   codec, packet logs, configuration, records) for `csgate bench --fuzz` and the tests.
 //! - [`plan`]: sampling planner (samples per window from the L1 phase transition, payload).
@@ -51,6 +53,8 @@ pub mod features;
 pub mod fuzz;
 #[cfg(feature = "hdf5-store")]
 pub mod inspect;
+#[cfg(feature = "hdf5-store")]
+pub mod loadtest;
 pub mod packet;
 pub mod pipeline;
 pub mod plan;

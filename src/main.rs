@@ -34,6 +34,8 @@ enum Command {
     Serve(commands::serve::ServeArgs),
     /// Measure how many sensor channels this machine reconstructs in real time.
     Bench(commands::bench::BenchArgs),
+    /// Bounded load test: simulated nodes at real-time pace into a gateway on loopback.
+    Loadtest(commands::loadtest::LoadtestArgs),
     /// Plan samples per window from the L1 phase transition, with the radio payload.
     Plan(commands::plan::PlanArgs),
     /// Summarize a record file per stream (table or JSON) and write PNG plots.
@@ -56,6 +58,7 @@ fn main() -> ExitCode {
         Command::Score(args) => commands::score::run(args),
         Command::Serve(args) => commands::serve::run(args),
         Command::Bench(args) => commands::bench::run(args),
+        Command::Loadtest(args) => commands::loadtest::run(args),
         Command::Plan(args) => commands::plan::run(args),
         #[cfg(feature = "hdf5-store")]
         Command::Inspect(args) => commands::inspect::run(args),

@@ -46,7 +46,7 @@ fn enrol(config: &mut GatewayConfig, scenario: &Scenario) {
 }
 
 /// One HTTP/1.1 GET over loopback; returns (head, body) for a response with a length.
-async fn http_get(addr: SocketAddr, path: &str) -> (String, String) {
+pub(crate) async fn http_get(addr: SocketAddr, path: &str) -> (String, String) {
     let mut s = TcpStream::connect(addr).await.unwrap();
     let req = format!("GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n\r\n");
     s.write_all(req.as_bytes()).await.unwrap();
@@ -59,7 +59,7 @@ async fn http_get(addr: SocketAddr, path: &str) -> (String, String) {
 
 /// Sum of the samples of one metric (any labels) in OpenMetrics text, with an optional label
 /// filter such as `reason="crc"`.
-fn metric(text: &str, name: &str, label: Option<&str>) -> f64 {
+pub(crate) fn metric(text: &str, name: &str, label: Option<&str>) -> f64 {
     let mut sum = 0.0;
     for line in text.lines().filter(|l| !l.starts_with('#')) {
         let (series, value) = line.rsplit_once(' ').unwrap();
@@ -253,7 +253,7 @@ async fn simulated_nodes_to_records_with_metrics_and_feed() {
     assert_eq!(index.files.len() as u64, report.record_files);
 }
 
-fn free_port() -> u16 {
+pub(crate) fn free_port() -> u16 {
     std::net::TcpListener::bind("127.0.0.1:0")
         .unwrap()
         .local_addr()

@@ -6,6 +6,11 @@ mod advice;
 mod analytics;
 mod basis;
 mod bench;
+/// Fault injection against the running gateway: cut frames, reconnects, duplicates and late
+/// windows, refused frames, idle peers, the connection cap, a failing record folder, SIGKILL;
+/// and the load test's short run.
+#[cfg(feature = "hdf5-store")]
+mod faults;
 mod features;
 /// Seeded mutation fuzzing of every input decoder, and the regressions it found.
 #[cfg(feature = "hdf5-store")]

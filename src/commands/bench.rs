@@ -33,7 +33,9 @@ harness (bench/python/side_by_side.py; format in the csgate::bench module docs).
 --fuzz N: the mutation fuzzing run instead: N seeded cases for each in-memory target (frame \
 decoder, streaming codec, packet-log reader, configuration parser) and --fuzz-records cases of \
 the HDF5 record reader; prints cases, wall time and cases/s per target and every failing case \
-with the seed that reproduces it (--fuzz-case TARGET:SEED); exit status 1 on any failure."
+with the seed that reproduces it (--fuzz-case TARGET:SEED); exit status 1 on any failure. Each \
+record case runs in a child process (HDF5 can crash or spin on a damaged file), --fuzz-jobs at \
+once, killed after --fuzz-case-limit seconds."
 )]
 pub struct BenchArgs {
     /// Channels in the capacity run (default: 4 per worker, at least 8; more channels than
@@ -90,6 +92,18 @@ pub struct BenchArgs {
     /// Only these fuzz targets, comma separated (frame, codec, log, config, record).
     #[arg(long, value_name = "LIST", value_delimiter = ',', value_parser = parse_target, requires = "fuzz")]
     pub fuzz_targets: Vec<csgate::fuzz::Target>,
+    /// Time limit of one record fuzz case, seconds; a case still running then is killed and
+    /// reported as a hang.
+    #[arg(
+        long,
+        default_value_t = 10.0,
+        value_name = "SECONDS",
+        requires = "fuzz"
+    )]
+    pub fuzz_case_limit: f64,
+    /// Record fuzz cases run at once, each in a child process (default: the number of cores).
+    #[arg(long, value_name = "N", requires = "fuzz")]
+    pub fuzz_jobs: Option<usize>,
     /// Run one fuzz case again from a failure line: TARGET:SEED.
     #[arg(long, value_name = "TARGET:SEED", value_parser = super::bench_fuzz::parse_case, conflicts_with = "fuzz")]
     pub fuzz_case: Option<(csgate::fuzz::Target, u64)>,
@@ -118,6 +132,16 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
             targets: args.fuzz_targets.clone(),
             quiet: args.quiet,
             json: args.json,
+            record_case_limit: Duration::from_secs_f64(if args.fuzz_case_limit.is_finite() {
+                args.fuzz_case_limit.clamp(0.1, 3600.0)
+            } else {
+                10.0
+            }),
+            jobs: args.fuzz_jobs.unwrap_or_else(|| {
+                std::thread::available_parallelism()
+                    .map(|n| n.get())
+                    .unwrap_or(1)
+            }),
         });
     }
     if let Some(manifest) = &args.solve_set {

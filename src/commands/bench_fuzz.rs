@@ -21,6 +21,10 @@ pub struct FuzzRun {
     pub quiet: bool,
     /// One JSON object instead of text.
     pub json: bool,
+    /// Time limit of one record case (the child is killed after it).
+    pub record_case_limit: Duration,
+    /// Record cases run at once, each in its own child process.
+    pub jobs: usize,
 }
 
 /// Runs the fuzz targets and prints counts, wall time, inputs/s and every failure with its
@@ -61,7 +65,13 @@ pub fn run(opts: FuzzRun) -> anyhow::Result<ExitCode> {
             b
         };
         let report = if target == Target::Record {
-            isolated_record_run(cases, opts.seed, |done| bar.set_position(done))?
+            isolated_record_run(
+                cases,
+                opts.seed,
+                opts.record_case_limit,
+                opts.jobs,
+                |done| bar.set_position(done),
+            )?
         } else {
             run_target(target, cases, opts.seed, |done| bar.set_position(done))
         };
@@ -82,6 +92,8 @@ pub fn run(opts: FuzzRun) -> anyhow::Result<ExitCode> {
                     "cases": r.cases,
                     "accepted": r.accepted,
                     "failed": r.failed,
+                    "crashed": r.crashed,
+                    "hung": r.hung,
                     "wall_s": r.elapsed.as_secs_f64(),
                     "cases_per_s": r.rate(),
                     "slowest_case_ms": r.slowest.0.as_secs_f64() * 1e3,
@@ -125,6 +137,14 @@ pub fn run(opts: FuzzRun) -> anyhow::Result<ExitCode> {
             opts.seed
         );
         for r in &reports {
+            if r.crashed + r.hung > 0 {
+                println!(
+                    "{:<8} of the failed: {} crashed (signal), {} hung (killed at the time limit)",
+                    r.target.name(),
+                    r.crashed,
+                    r.hung
+                );
+            }
             for f in &r.failures {
                 println!("FAILED   {f}");
                 println!(
@@ -178,11 +198,14 @@ pub fn run_one(target: Target, seed: u64) -> ExitCode {
 
 /// The record target with every case in a child process (`csgate bench --fuzz-case`): the HDF5
 /// C library can crash the process outright on some damaged files (a segmentation fault,
-/// which no `catch_unwind` sees), and such a crash must be reported with its seed, not end the
-/// run.
+/// which no `catch_unwind` sees) or spin in it for minutes, and such a case must be reported
+/// with its seed, not end or stall the run. `jobs` children run at once; a child that has not
+/// finished after `limit` is killed and its case reported as a hang.
 fn isolated_record_run(
     cases: u64,
     base_seed: u64,
+    limit: Duration,
+    jobs: usize,
     mut progress: impl FnMut(u64),
 ) -> anyhow::Result<TargetReport> {
     let exe = std::env::current_exe()?;
@@ -195,44 +218,97 @@ fn isolated_record_run(
         failures: Vec::new(),
         failed: 0,
         slowest: (Duration::ZERO, 0),
+        crashed: 0,
+        hung: 0,
     };
-    for i in 0..cases {
-        let seed = case_seed(base_seed, i);
-        let t = Instant::now();
-        let out = std::process::Command::new(&exe)
-            .args(["bench", "--fuzz-case", &format!("record:{seed:#x}")])
-            .stderr(std::process::Stdio::null())
-            .output()?;
-        let took = t.elapsed();
-        if took > report.slowest.0 {
-            report.slowest = (took, seed);
+    let mut running: Vec<(u64, Instant, std::process::Child)> = Vec::new();
+    let mut next = 0u64;
+    let mut pause = Duration::from_micros(200);
+    while next < cases || !running.is_empty() {
+        while next < cases && running.len() < jobs.max(1) {
+            let seed = case_seed(base_seed, next);
+            let child = std::process::Command::new(&exe)
+                .args(["bench", "--fuzz-case", &format!("record:{seed:#x}")])
+                .stdin(std::process::Stdio::null())
+                .stdout(std::process::Stdio::piped())
+                .stderr(std::process::Stdio::null())
+                .spawn()?;
+            running.push((seed, Instant::now(), child));
+            next += 1;
         }
-        let text = String::from_utf8_lossy(&out.stdout);
-        let failure = match (out.status.code(), out.status.signal()) {
-            (Some(0), _) => {
-                if text.contains(&format!("{:?}", CaseOutcome::Accepted)) {
-                    report.accepted += 1;
+        let mut finished = false;
+        let mut k = 0;
+        while k < running.len() {
+            let (seed, began, child) = &mut running[k];
+            let took = began.elapsed();
+            let status = match child.try_wait()? {
+                Some(status) => Some(status),
+                None if took >= limit => {
+                    // Hung inside the library: kill it (SIGKILL) and report the case.
+                    let _ = child.kill();
+                    let _ = child.wait();
+                    None
                 }
-                None
+                None => {
+                    k += 1;
+                    continue;
+                }
+            };
+            let (seed, took) = (*seed, took);
+            let mut text = String::new();
+            if let Some(out) = child.stdout.as_mut() {
+                use std::io::Read;
+                let _ = out.read_to_string(&mut text);
             }
-            (_, Some(sig)) => Some(format!(
-                "the process died of signal {sig} (a crash inside the HDF5 C library)"
-            )),
-            (code, _) => Some(format!("exit {code:?}: {}", text.trim())),
-        };
-        if let Some(message) = failure {
-            report.failed += 1;
-            if report.failures.len() < csgate::fuzz::MAX_FAILURES_KEPT {
-                report.failures.push(Failure {
-                    target: Target::Record,
-                    seed,
-                    message,
-                });
+            running.swap_remove(k);
+            finished = true;
+            if took > report.slowest.0 {
+                report.slowest = (took, seed);
+            }
+            match status {
+                None => report.hung += 1,
+                Some(s) if s.signal().is_some() => report.crashed += 1,
+                Some(_) => {}
+            }
+            let failure = match status {
+                None => Some(format!(
+                    "no result after {:.0} s: killed (a hang inside the HDF5 C library)",
+                    limit.as_secs_f64()
+                )),
+                Some(status) => match (status.code(), status.signal()) {
+                    (Some(0), _) => {
+                        if text.contains(&format!("{:?}", CaseOutcome::Accepted)) {
+                            report.accepted += 1;
+                        }
+                        None
+                    }
+                    (_, Some(sig)) => Some(format!(
+                        "the process died of signal {sig} (a crash inside the HDF5 C library)"
+                    )),
+                    (code, _) => Some(format!("exit {code:?}: {}", text.trim())),
+                },
+            };
+            if let Some(message) = failure {
+                report.failed += 1;
+                if report.failures.len() < csgate::fuzz::MAX_FAILURES_KEPT {
+                    report.failures.push(Failure {
+                        target: Target::Record,
+                        seed,
+                        message,
+                    });
+                }
+            }
+            report.cases += 1;
+            if report.cases % 16 == 0 {
+                progress(report.cases);
             }
         }
-        report.cases += 1;
-        if i % 16 == 0 {
-            progress(i);
+        // Poll with a short, growing pause: a case takes a few milliseconds.
+        if finished {
+            pause = Duration::from_micros(200);
+        } else {
+            std::thread::sleep(pause);
+            pause = (pause * 2).min(Duration::from_millis(5));
         }
     }
     progress(cases);

@@ -5,6 +5,7 @@ pub mod bench_fuzz;
 pub mod demo;
 #[cfg(feature = "hdf5-store")]
 pub mod inspect;
+pub mod loadtest;
 pub mod plan;
 pub mod replay;
 pub mod score;

@@ -38,6 +38,15 @@ pub mod defaults {
     /// Long enough to reconstruct a full solver queue (256 windows) on a small gateway; a
     /// second signal or this deadline discards the packets still waiting instead.
     pub const DRAIN_TIMEOUT_S: u64 = 30;
+    /// After a write error (disk full, folder read-only), a new record file is tried this
+    /// often: soon enough that little more is lost once space returns, seldom enough that a
+    /// failing disk is not hammered and the log gets one line per try.
+    pub const WRITE_RETRY_MS: u64 = 10_000;
+    /// A new stream waits this long for others before the next record file is started for
+    /// it: nodes that connect together (after a restart of the gateway, or of a site's power)
+    /// then share one new file instead of costing one each; the delay is of the order of the
+    /// flush interval, so readers and a crash see little difference.
+    pub const NEW_STREAM_WAIT_MS: u64 = 2_000;
 }
 
 /// Errors of loading a configuration. Every message names the file and, where there is one,
@@ -240,6 +249,13 @@ pub struct RecordSection {
     pub deflate: u8,
     /// Record messages waiting for the writer. Default 1024.
     pub queue_capacity: usize,
+    /// After a write error, try a new record file this often, milliseconds; meanwhile what
+    /// arrives is counted and discarded. Default 10000.
+    pub write_retry_ms: u64,
+    /// A stream that appears while a file is open waits this long, milliseconds, for other
+    /// new streams before the next file is started for them all; 0 starts it at once.
+    /// Default 2000.
+    pub new_stream_wait_ms: u64,
 }
 
 impl Default for RecordSection {
@@ -252,6 +268,8 @@ impl Default for RecordSection {
             flush_interval_ms: defaults::FLUSH_INTERVAL_MS,
             deflate: 0,
             queue_capacity: defaults::RECORD_QUEUE,
+            write_retry_ms: defaults::WRITE_RETRY_MS,
+            new_stream_wait_ms: defaults::NEW_STREAM_WAIT_MS,
         }
     }
 }
@@ -518,6 +536,12 @@ impl GatewayConfig {
         if self.record.queue_capacity == 0 {
             return Err(bad("record.queue_capacity", "expected at least 1".into()));
         }
+        if self.record.write_retry_ms == 0 {
+            return Err(bad(
+                "record.write_retry_ms",
+                "expected a positive number of milliseconds".into(),
+            ));
+        }
         if self.http.feed_capacity == 0 {
             return Err(bad("http.feed_capacity", "expected at least 1".into()));
         }
@@ -640,6 +664,8 @@ impl GatewayConfig {
         c.flush_interval = Duration::from_millis(r.flush_interval_ms);
         c.rotate_after = (r.rotate_after_s > 0).then(|| Duration::from_secs(r.rotate_after_s));
         c.rotate_bytes = (r.rotate_mib > 0).then_some(r.rotate_mib << 20);
+        c.retry_after = Some(Duration::from_millis(r.write_retry_ms));
+        c.new_stream_wait = Duration::from_millis(r.new_stream_wait_ms);
         c
     }
 

@@ -62,6 +62,9 @@ async fn health(State(s): State<Arc<HttpState>>) -> Response {
         "version": crate::VERSION,
         "uptime_s": s.started.elapsed().as_secs_f64(),
         "connections": ingest.connections_active,
+        // "failing" while a write error keeps the record from being written (see /metrics
+        // csgate_record_*); the gateway keeps ingesting and retries.
+        "record": if s.sources.record.failing.load(Ordering::Relaxed) { "failing" } else { "writing" },
         "streams": s.sources.pipeline.streams.load(Ordering::Relaxed),
     });
     // A draining gateway answers 503 so that a load balancer or supervisor stops sending.

@@ -155,6 +155,10 @@ struct GatewayFigures {
     workers: Gauge,
     worker_busy: Counter<f64, AtomicU64>,
     record_bytes: Counter,
+    record_write_errors: Counter,
+    record_writable: Gauge,
+    record_dropped_samples: Counter,
+    record_dropped_rows: Counter,
     feed_events: Counter,
     discarded_at_shutdown: Counter,
 }
@@ -169,8 +173,14 @@ pub struct MetricSources {
     /// Bytes in record files written so far (closed files plus the open one at its last
     /// flush).
     pub record_bytes: Arc<AtomicU64>,
-    /// Packets waiting between the sockets and the pipeline.
+    /// Write-error figures of the record writer.
+    pub record: Arc<crate::store::SinkLive>,
+    /// Packets waiting between the sockets and the pipeline, as the forwarder last saw them.
     pub packet_queue: Arc<AtomicU64>,
+    /// That channel itself, read at each scrape (the forwarder's figure goes stale while it
+    /// waits for a full pipeline, which is when the figure matters). A weak handle: it does
+    /// not keep the channel open.
+    pub packet_channel: Option<tokio::sync::mpsc::WeakSender<crate::packet::Packet>>,
     /// Capacity of that queue.
     pub packet_queue_capacity: usize,
     /// Solver queue limit.
@@ -324,12 +334,12 @@ impl GatewayMetrics {
         );
         r.register(
             "frames_rejected",
-            "Frames rejected at ingest by reason: crc, decode, invalid, unauthenticated (a corrupt frame cannot be trusted to name its stream, so these are per gateway)",
+            "Frames rejected at ingest by reason: crc, decode, invalid, unauthenticated, truncated (the connection ended inside the frame); a corrupt frame cannot be trusted to name its stream, so these are per gateway",
             g.frames_rejected.clone(),
         );
         r.register(
             "frames_dropped",
-            "Windows dropped by the reorder buffers: late, duplicate",
+            "Windows dropped after ingest: late, duplicate (by the reorder buffers), out_of_range (a seq too far from its capture's start to place)",
             g.frames_dropped.clone(),
         );
         r.register(
@@ -383,6 +393,26 @@ impl GatewayMetrics {
             g.record_bytes.clone(),
         );
         r.register(
+            "record_write_errors",
+            "Record write errors (disk full, folder not writable, ...); each abandons the open file and starts discarding until a new file can be written",
+            g.record_write_errors.clone(),
+        );
+        r.register(
+            "record_writable",
+            "1 while the record is being written, 0 during a write outage",
+            g.record_writable.clone(),
+        );
+        r.register(
+            "record_dropped_samples",
+            "Samples (NaN fill of gaps included) that could not be written during write outages",
+            g.record_dropped_samples.clone(),
+        );
+        r.register(
+            "record_dropped_rows",
+            "Window, peak and indicator rows that could not be written during write outages",
+            g.record_dropped_rows.clone(),
+        );
+        r.register(
             "feed_events",
             "Events published to the feed",
             g.feed_events.clone(),
@@ -424,6 +454,10 @@ impl GatewayMetrics {
             i.decode_errors,
         );
         set(
+            &g.frames_rejected.get_or_create(&reason("truncated")),
+            i.truncated_frames,
+        );
+        set(
             &g.frames_rejected.get_or_create(&reason("invalid")),
             i.validation_errors,
         );
@@ -438,6 +472,10 @@ impl GatewayMetrics {
         set(
             &g.frames_dropped.get_or_create(&reason("duplicate")),
             p.duplicates.load(Relaxed),
+        );
+        set(
+            &g.frames_dropped.get_or_create(&reason("out_of_range")),
+            p.out_of_range.load(Relaxed),
         );
         if let Ok(v) = p.reorder_by_stream.lock() {
             for &(id, dup, late) in v.iter() {
@@ -456,9 +494,13 @@ impl GatewayMetrics {
         set(&g.windows_lost, p.lost_windows.load(Relaxed));
         set(&g.windows_failed, p.failed_windows.load(Relaxed));
         g.streams.set(p.streams.load(Relaxed) as i64);
+        let packets = match s.packet_channel.as_ref().and_then(|w| w.upgrade()) {
+            Some(tx) => (tx.max_capacity() - tx.capacity()) as u64,
+            None => s.packet_queue.load(Relaxed),
+        };
         g.queue_depth
             .get_or_create(&queue("packets"))
-            .set(s.packet_queue.load(Relaxed) as i64);
+            .set(packets as i64);
         g.queue_depth
             .get_or_create(&queue("solver"))
             .set(p.queued.load(Relaxed) as i64);
@@ -474,6 +516,14 @@ impl GatewayMetrics {
             Relaxed,
         );
         set(&g.record_bytes, s.record_bytes.load(Relaxed));
+        set(&g.record_write_errors, s.record.write_errors.load(Relaxed));
+        g.record_writable
+            .set(i64::from(!s.record.failing.load(Relaxed)));
+        set(
+            &g.record_dropped_samples,
+            s.record.dropped_samples.load(Relaxed),
+        );
+        set(&g.record_dropped_rows, s.record.dropped_rows.load(Relaxed));
         set(&g.feed_events, s.feed.published());
         set(
             &g.discarded_at_shutdown,

@@ -33,7 +33,7 @@ use crate::pipeline::run::{self as pipeline, PipelineError, PipelineStats, Pipel
 use crate::sources::tcp::{self, IngestError, IngestSnapshot, IngestStats};
 use crate::store::layout::WindowRow;
 use crate::store::StreamKey;
-use crate::store::{RecordMsg, RecordSink, SinkStats, StoreError};
+use crate::store::{RecordMsg, RecordSink, SinkStats, StoreError, WriteFault};
 use serde::Serialize;
 use std::collections::HashMap;
 use std::net::SocketAddr;
@@ -119,6 +119,12 @@ pub struct ServeReport {
     pub record_bytes: u64,
     /// Packets discarded by a shortened drain.
     pub discarded_packets: u64,
+    /// Write errors of the record writer (each began an outage; see `store::sink`).
+    pub record_write_errors: u64,
+    /// Samples (NaN fill included) that could not be written during outages.
+    pub record_dropped_samples: u64,
+    /// Window, peak and indicator rows that could not be written during outages.
+    pub record_dropped_rows: u64,
     /// True if the drain was shortened (second signal or deadline).
     pub forced: bool,
     /// Seconds from the first signal to the end.
@@ -134,6 +140,7 @@ pub struct Gateway {
     http: Option<TcpListener>,
     feed: EventFeed,
     metrics: Arc<GatewayMetrics>,
+    write_fault: WriteFault,
 }
 
 impl Gateway {
@@ -174,6 +181,7 @@ impl Gateway {
             http,
             feed,
             metrics,
+            write_fault: WriteFault::new(),
         })
     }
 
@@ -201,6 +209,12 @@ impl Gateway {
         Arc::clone(&self.metrics)
     }
 
+    /// Fault injection for tests: a switch that makes the record writer's writes fail as on
+    /// a full disk ([`WriteFault`]). Off unless a test turns it on.
+    pub fn record_write_fault(&self) -> WriteFault {
+        self.write_fault.clone()
+    }
+
     /// Runs until `shutdown` is signalled and the drain is complete.
     pub async fn run(self, shutdown: Shutdown) -> Result<ServeReport, DaemonError> {
         let Gateway {
@@ -210,6 +224,7 @@ impl Gateway {
             http,
             feed,
             metrics,
+            write_fault,
         } = self;
         let ingest_stats = Arc::new(IngestStats::default());
         let pipe_stats = Arc::new(PipelineStats::default());
@@ -218,8 +233,10 @@ impl Gateway {
         let draining = Arc::new(AtomicBool::new(false));
 
         // Writer thread, behind the record tap.
-        let sink_config = config.sink_config(config_digest);
+        let mut sink_config = config.sink_config(config_digest);
+        sink_config.write_fault = write_fault;
         let record_bytes = Arc::clone(&sink_config.live_bytes);
+        let record_live = Arc::clone(&sink_config.live);
         let (sink, sink_handle) = RecordSink::spawn(sink_config);
         let (tap_tx, tap_rx) = std::sync::mpsc::sync_channel(config.record.queue_capacity);
         let board = config.advice_board();
@@ -252,6 +269,7 @@ impl Gateway {
         // Ingest and forwarder.
         let ingest_config = config.ingest_config();
         let (ing_tx, ing_rx) = mpsc::channel::<Packet>(config.ingest.channel_capacity);
+        let ing_tx_weak = ing_tx.downgrade();
         let drain_token = shutdown.drain.clone();
         let mut ingest_task = tokio::spawn(tcp::run_advised(
             ingest,
@@ -275,7 +293,9 @@ impl Gateway {
             ingest: Arc::clone(&ingest_stats),
             pipeline: Arc::clone(&pipe_stats),
             record_bytes: Arc::clone(&record_bytes),
+            record: Arc::clone(&record_live),
             packet_queue: Arc::clone(&packet_queue),
+            packet_channel: Some(ing_tx_weak),
             packet_queue_capacity: config.ingest.channel_capacity,
             solver_queue_capacity: config.pipeline.max_queued_windows,
             workers: config.pipeline.workers,
@@ -401,6 +421,9 @@ impl Gateway {
             record_files: sink_stats.files,
             record_bytes: sink_stats.bytes_written,
             discarded_packets: discarded.load(Ordering::Relaxed),
+            record_write_errors: sink_stats.errors,
+            record_dropped_samples: sink_stats.dropped_samples,
+            record_dropped_rows: sink_stats.dropped_rows,
             forced: shutdown.force.is_cancelled(),
             drain_s: drain_started.elapsed().as_secs_f64(),
         };
@@ -410,6 +433,8 @@ impl Gateway {
             files = report.record_files,
             bytes = report.record_bytes,
             discarded = report.discarded_packets,
+            record_write_errors = report.record_write_errors,
+            not_written_samples = report.record_dropped_samples,
             "gateway stopped; every record closed"
         );
         Ok(report)

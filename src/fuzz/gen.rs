@@ -113,29 +113,37 @@ pub(crate) fn window(rng: &mut FuzzRng) -> Packet {
 }
 
 /// Bytes that are a frame's, or random, or a frame's mutated (the mix every frame target uses).
-pub(crate) fn frame_input(rng: &mut FuzzRng) -> (Vec<u8>, Option<(Vec<u8>, bool)>) {
+/// The frame-target input: the bytes, and (unless they are random) the valid frame they were
+/// made from, whether it is signed, and the other valid frame spliced in, if one was (it may
+/// be signed with the same key, and a splice can reproduce it whole).
+pub(crate) fn frame_input(rng: &mut FuzzRng) -> FrameInput {
     if rng.one_in(16) {
         let k = rng.below(96);
         let mut b = rng.bytes(k);
         if rng.one_in(2) && b.len() >= 4 {
             b[..4].copy_from_slice(&wire::MAGIC);
         }
-        return (b, None);
+        return (b, None, None);
     }
     let (orig, signed) = valid_frame(rng);
     let mut b = orig.clone();
+    let mut spliced = None;
     if !rng.one_in(8) {
         let other = valid_frame(rng).0;
         for _ in 0..rng.range(1, 3) {
             mutate_frame(rng, &mut b, &other);
         }
+        spliced = Some(other);
         // Most mutations would stop at the CRC; fixing it up lets them reach the parser.
         if rng.below(4) != 0 {
             fix_crc(&mut b);
         }
     }
-    (b, Some((orig, signed)))
+    (b, Some((orig, signed)), spliced)
 }
+
+/// See [`frame_input`].
+pub(crate) type FrameInput = (Vec<u8>, Option<(Vec<u8>, bool)>, Option<Vec<u8>>);
 
 /// Rewrites the trailing CRC of a buffer that looks like a frame (length field permitting).
 pub(crate) fn fix_crc(b: &mut [u8]) {

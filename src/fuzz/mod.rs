@@ -29,7 +29,7 @@
 mod gen;
 mod targets;
 
-pub use targets::run_case;
+pub use targets::{record_case_input, run_case};
 
 use std::fmt;
 use std::time::{Duration, Instant};
@@ -178,6 +178,10 @@ pub struct TargetReport {
     pub failed: u64,
     /// The slowest case: its wall time and seed (a hang would show here first).
     pub slowest: (Duration, u64),
+    /// Of the failed cases: processes that died of a signal (record cases run in children).
+    pub crashed: u64,
+    /// Of the failed cases: children killed at the time limit.
+    pub hung: u64,
 }
 
 impl TargetReport {
@@ -217,6 +221,8 @@ pub fn run_target(
         failures: Vec::new(),
         failed: 0,
         slowest: (Duration::ZERO, 0),
+        crashed: 0,
+        hung: 0,
     };
     for i in 0..cases {
         let seed = case_seed(base_seed, i);

@@ -373,6 +373,21 @@ impl StreamState {
         let b = self.block_len as u64;
         let mut off = 0u64;
         while off < len {
+            if data.is_none() && self.filled == 0 && len - off >= b {
+                // Whole blocks inside a gap are skipped at once: a gap of any length (a node
+                // that was away for days, or a seq far ahead) costs no more than one block.
+                let whole = (len - off) / b;
+                out.stats.skipped_gap.fetch_add(whole, Ordering::Relaxed);
+                self.block_start += whole * b;
+                off += whole * b;
+                self.block_gap = false;
+                self.buf.clear();
+                let bs = self.block_start;
+                while self.windows.front().is_some_and(|w| w.end <= bs) {
+                    self.windows.pop_front();
+                }
+                continue;
+            }
             let take = (len - off).min(b - self.filled as u64);
             match data {
                 Some(d) if !self.block_gap => {

@@ -199,6 +199,9 @@ pub struct PipelineStats {
     pub duplicates: AtomicU64,
     /// Late windows dropped.
     pub late: AtomicU64,
+    /// Windows dropped because their grid position was out of range (a seq absurdly far from
+    /// the capture's first).
+    pub out_of_range: AtomicU64,
     /// Gap rows sent to the record.
     pub gaps: AtomicU64,
     /// Samples sent to the record.
@@ -242,6 +245,7 @@ impl PipelineStats {
             lost_windows: self.lost_windows.load(Ordering::Relaxed),
             duplicates: self.duplicates.load(Ordering::Relaxed),
             late: self.late.load(Ordering::Relaxed),
+            out_of_range: self.out_of_range.load(Ordering::Relaxed),
             gaps: self.gaps.load(Ordering::Relaxed),
             samples: self.samples.load(Ordering::Relaxed),
             mean_residual: if windows > 0 {
@@ -313,6 +317,8 @@ pub struct PipelineSummary {
     pub duplicates: u64,
     /// Late windows dropped.
     pub late: u64,
+    /// Windows dropped because their grid position was out of range.
+    pub out_of_range: u64,
     /// Gap rows written.
     pub gaps: u64,
     /// Samples written (including NaN in gaps).
@@ -414,6 +420,16 @@ struct StreamSlot {
     settings: Arc<SolveSettings>,
     warm_start: WarmStart,
     method: super::reconstruct::Method,
+}
+
+/// The grid position of window `seq` of a capture, if it is a sane one: at most 2^53 samples
+/// from the capture's start (about 11 000 years at 25.6 kHz), so that every later sum and
+/// conversion stays exact. A window beyond that is a node fault, not a signal.
+fn grid_position(seq: u64, grid: &CaptureGrid) -> Option<u64> {
+    const MAX_POSITION: u64 = 1 << 53;
+    seq.checked_sub(grid.first_seq)?
+        .checked_mul(grid.hop)
+        .filter(|&p| p <= MAX_POSITION)
 }
 
 #[derive(Debug, Clone, Copy)]
@@ -673,7 +689,16 @@ impl Dispatcher<'_> {
                             .queue
                             .push_back(Pending::CaptureBegin(Box::new(packet.header)));
                     }
-                    let start = (packet.header.seq - grid.first_seq) * grid.hop;
+                    let Some(start) = grid_position(packet.header.seq, &grid) else {
+                        self.stats.out_of_range.fetch_add(1, Ordering::Relaxed);
+                        tracing::warn!(
+                            stream = %packet.stream(),
+                            seq = packet.header.seq,
+                            first_seq = grid.first_seq,
+                            "window too far from the start of its capture to place on a grid; dropped"
+                        );
+                        continue;
+                    };
                     self.slots[s]
                         .queue
                         .push_back(Pending::Window { start, packet });
@@ -695,16 +720,18 @@ impl Dispatcher<'_> {
                         // grid yet; the record starts at the first window received.
                         continue;
                     }
-                    for k in 0..count {
-                        let seq = from_seq + k;
-                        if seq < grid.first_seq {
-                            continue;
+                    // One entry for the first lost window only: the stitcher counts the slots
+                    // skipped before the next window as missing too (same reason), so a gap
+                    // of any length costs the same memory and time. A gap always ends at a
+                    // window that arrived (the reorder buffer declares none at the tail).
+                    let first = from_seq.max(grid.first_seq);
+                    if first < from_seq.saturating_add(count) {
+                        if let Some(start) = grid_position(first, &grid) {
+                            self.slots[s].queue.push_back(Pending::Missing {
+                                start,
+                                reason: GapReason::WindowMissing,
+                            });
                         }
-                        let start = (seq - grid.first_seq) * grid.hop;
-                        self.slots[s].queue.push_back(Pending::Missing {
-                            start,
-                            reason: GapReason::WindowMissing,
-                        });
                     }
                 }
                 ReorderEvent::CaptureEnd { stream, .. } => {

@@ -14,6 +14,7 @@
 use super::config::IngestConfig;
 use crate::advice::AdviceBoard;
 use crate::packet::codec::{CodecError, FrameCodec, RawFrame};
+use crate::packet::wire::WireError;
 use crate::packet::{wire, Ack, AuthError, Control, DecodeError, Frame, KeyRing, Packet, StreamId};
 use bytes::BytesMut;
 use futures::{SinkExt, StreamExt};
@@ -67,9 +68,12 @@ pub struct IngestStats {
     pub bytes: AtomicU64,
     /// Frames failing their CRC.
     pub crc_errors: AtomicU64,
-    /// Frames that could not be delimited or parsed (other than CRC), including streams
-    /// ending inside a frame and unexpected frame kinds.
+    /// Frames that could not be delimited or parsed (other than CRC and cut frames),
+    /// including unexpected frame kinds.
     pub decode_errors: AtomicU64,
+    /// Connections that ended inside a frame (the node went away mid-frame); the partial
+    /// frame is discarded.
+    pub truncated_frames: AtomicU64,
     /// Windows that parsed but broke a validation rule.
     pub validation_errors: AtomicU64,
     /// Frames failing authentication.
@@ -91,6 +95,7 @@ pub struct IngestSnapshot {
     pub bytes: u64,
     pub crc_errors: u64,
     pub decode_errors: u64,
+    pub truncated_frames: u64,
     pub validation_errors: u64,
     pub auth_failures: u64,
     pub idle_timeouts: u64,
@@ -108,6 +113,7 @@ impl IngestStats {
             bytes: self.bytes.load(Relaxed),
             crc_errors: self.crc_errors.load(Relaxed),
             decode_errors: self.decode_errors.load(Relaxed),
+            truncated_frames: self.truncated_frames.load(Relaxed),
             validation_errors: self.validation_errors.load(Relaxed),
             auth_failures: self.auth_failures.load(Relaxed),
             idle_timeouts: self.idle_timeouts.load(Relaxed),
@@ -293,6 +299,13 @@ async fn connection(
             Ok(None) => break,
             Ok(Some(Err(CodecError::Io(e)))) => {
                 tracing::info!(%peer, error = %e, "connection error");
+                break;
+            }
+            Ok(Some(Err(CodecError::Wire(WireError::Truncated { needed, have })))) => {
+                // The node closed (or its link dropped) in the middle of a frame: not a
+                // protocol fault of ours to punish, but the partial frame is gone.
+                inc(&stats.truncated_frames);
+                tracing::warn!(%peer, have, needed, "connection ended inside a frame; the partial frame is discarded");
                 break;
             }
             Ok(Some(Err(e))) => {

@@ -24,7 +24,10 @@ mod writer;
 pub use crate::stream::overlap_add::GapReason;
 pub use layout::{ClosedRow, GapRow, IndicatorRow, PeakRow, SegmentRow, WindowRow};
 pub use reader::{FileAttrs, RecordReader};
-pub use sink::{FileEntry, RecordIndex, RecordMsg, RecordSink, SinkConfig, SinkStats, StreamEntry};
+pub use sink::{
+    FileEntry, RecordIndex, RecordMsg, RecordSink, SinkConfig, SinkLive, SinkStats, StreamEntry,
+    WriteFault,
+};
 pub use time::{iso8601_utc, INDEX_FILE};
 pub use writer::{RecordWriter, StreamCursor, StreamKey, StreamMeta, WriterOptions};
 

@@ -7,6 +7,19 @@
 //! `rec-20261201T120000Z-0001.h5`) in the record folder; `index.json` beside them lists each
 //! file, its streams and their sample ranges, and is replaced atomically (write, then rename)
 //! at every file open, flush and close.
+//!
+//! # Write errors
+//! Without [`SinkConfig::retry_after`] (offline replay) the first write error ends the thread
+//! and comes back through its join handle. With it (the gateway), a write error (disk full,
+//! folder made read-only, ...) starts an *outage*: the open file is abandoned as it stands
+//! (readable up to its last flush, like the file of a killed writer: no `closed` row, `closed`
+//! stays `null` in the index), the error is logged, and from then on every message is counted
+//! in [`SinkLive`] and discarded, so the stages before the sink keep running with bounded
+//! memory. Every `retry_after` the next data message tries to open a new file of the series;
+//! once that works, writing resumes there and the stretch that could not be written shows in
+//! the new file as a gap (NaN with a gap row of reason 0, or a new segment when longer than
+//! `max_nan_fill`). Capture restarts seen during the outage are followed, so the new file
+//! starts on the right grid.
 
 use super::layout::{close_reason, IndicatorRow, PeakRow, WindowRow};
 use super::time::{file_stamp, grid_time, iso8601_utc, now_unix_ns, INDEX_FILE};
@@ -15,9 +28,64 @@ use super::{GapReason, StoreError};
 use serde::{Deserialize, Serialize};
 use std::collections::BTreeMap;
 use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicBool, AtomicU64, Ordering::Relaxed};
 use std::sync::mpsc::{self, RecvTimeoutError, SyncSender};
+use std::sync::Arc;
 use std::thread::JoinHandle;
 use std::time::{Duration, Instant};
+
+/// Live figures of the writer thread about write errors (atomics, for metrics and health).
+#[derive(Debug, Default)]
+pub struct SinkLive {
+    /// Outages begun: write errors that made the sink abandon its file.
+    pub write_errors: AtomicU64,
+    /// True while the record cannot be written (an outage is going on).
+    pub failing: AtomicBool,
+    /// Record messages discarded because they could not be written.
+    pub dropped_msgs: AtomicU64,
+    /// Samples (NaN fill of gap messages included) that could not be written.
+    pub dropped_samples: AtomicU64,
+    /// Window, peak and indicator rows that could not be written.
+    pub dropped_rows: AtomicU64,
+}
+
+/// Fault injection for tests: while switched on, every write of the sink (data messages,
+/// flushes, opening a file) fails as on a full disk (`ENOSPC`) before it reaches the disk.
+/// Tests use it where a real full or read-only file system cannot be arranged (running as root
+/// makes permissions moot, and a small file system needs privileges to mount). Off by default;
+/// nothing in the gateway switches it on.
+#[derive(Debug, Clone, Default)]
+pub struct WriteFault(Arc<AtomicBool>);
+
+impl WriteFault {
+    /// A switch, off.
+    pub fn new() -> Self {
+        Self::default()
+    }
+
+    /// Switches the fault on (every write fails) or off.
+    pub fn set(&self, on: bool) {
+        self.0.store(on, Relaxed);
+    }
+
+    /// Whether the fault is on.
+    pub fn is_on(&self) -> bool {
+        self.0.load(Relaxed)
+    }
+
+    fn check(&self, path: &Path) -> Result<(), StoreError> {
+        if self.is_on() {
+            return Err(StoreError::Io {
+                path: path.to_path_buf(),
+                source: std::io::Error::new(
+                    std::io::ErrorKind::StorageFull,
+                    "no space left on device (injected fault)",
+                ),
+            });
+        }
+        Ok(())
+    }
+}
 
 /// Configuration of the writer thread.
 #[derive(Debug, Clone)]
@@ -46,7 +114,26 @@ pub struct SinkConfig {
     /// Bytes of the files written so far (closed files plus the open one at its last flush),
     /// updated at every flush and close, for live metrics. Default: a fresh counter.
     pub live_bytes: std::sync::Arc<std::sync::atomic::AtomicU64>,
+    /// After a write error: `None` ends the thread with the error (offline replay: a partial
+    /// record must not look complete); `Some(d)` abandons the file, discards and counts what
+    /// arrives, and tries a new file every `d` (the gateway; see the module docs). Default
+    /// `None`.
+    pub retry_after: Option<Duration>,
+    /// Write-error counters, for live metrics. Default: fresh counters.
+    pub live: Arc<SinkLive>,
+    /// Fault injection for tests ([`WriteFault`]). Default: off.
+    pub write_fault: WriteFault,
+    /// How long a stream that appears while a file is open waits for others before the sink
+    /// starts the next file for it (HDF5 cannot add a stream to a file in SWMR mode). Its
+    /// messages are held in memory meanwhile, at most [`MAX_HELD_MSGS`]. Zero (the default)
+    /// starts the next file at once. The gateway waits: a hundred nodes connecting within a
+    /// second otherwise cost a hundred files, each with every stream known so far, and
+    /// creating them kept the writer busy for tens of seconds (found by `csgate loadtest`).
+    pub new_stream_wait: Duration,
 }
+
+/// Most messages held for streams waiting for the next file; one more starts it at once.
+pub const MAX_HELD_MSGS: usize = 4096;
 
 impl SinkConfig {
     /// Defaults for a record folder.
@@ -62,6 +149,10 @@ impl SinkConfig {
             rotate_bytes: Some(2 << 30),
             single_file: None,
             live_bytes: Default::default(),
+            retry_after: None,
+            live: Default::default(),
+            write_fault: WriteFault::default(),
+            new_stream_wait: Duration::ZERO,
         }
     }
 }
@@ -143,8 +234,15 @@ pub struct SinkStats {
     pub files: u64,
     /// Messages dropped because they named a stream that was never opened.
     pub unknown_stream_msgs: u64,
-    /// Write errors (the first one ends the thread).
+    /// Write errors (without `retry_after` the first one ends the thread; with it, each one
+    /// began an outage).
     pub errors: u64,
+    /// Record messages discarded during outages.
+    pub dropped_msgs: u64,
+    /// Samples (NaN fill included) discarded during outages.
+    pub dropped_samples: u64,
+    /// Window, peak and indicator rows discarded during outages.
+    pub dropped_rows: u64,
 }
 
 /// One stream in one file of the index.
@@ -267,6 +365,15 @@ struct OpenFile {
     entry: usize,
 }
 
+/// A stretch of time in which the record could not be written.
+struct Outage {
+    since: Instant,
+    next_try: Instant,
+    msgs: u64,
+    samples: u64,
+    rows: u64,
+}
+
 struct SinkState {
     config: SinkConfig,
     streams: BTreeMap<StreamKey, StreamMeta>,
@@ -275,6 +382,11 @@ struct SinkState {
     index: RecordIndex,
     next_seq: u32,
     stats: SinkStats,
+    outage: Option<Outage>,
+    /// Streams whose messages wait for the next file, since when, and their messages in order.
+    waiting: std::collections::BTreeSet<StreamKey>,
+    waiting_since: Option<Instant>,
+    held: Vec<RecordMsg>,
 }
 
 impl SinkState {
@@ -309,35 +421,236 @@ impl SinkState {
             index,
             next_seq,
             stats: SinkStats::default(),
+            outage: None,
+            waiting: Default::default(),
+            waiting_since: None,
+            held: Vec::new(),
         })
     }
 
     fn run(&mut self, rx: &mpsc::Receiver<RecordMsg>) -> Result<(), StoreError> {
         let mut last_flush = Instant::now();
         loop {
-            let wait = self
+            let mut wait = self
                 .config
                 .flush_interval
                 .saturating_sub(last_flush.elapsed());
+            if let Some(since) = self.waiting_since {
+                wait = wait.min(self.config.new_stream_wait.saturating_sub(since.elapsed()));
+            }
             match rx.recv_timeout(wait) {
                 Ok(RecordMsg::Shutdown) | Err(RecvTimeoutError::Disconnected) => return Ok(()),
                 Ok(RecordMsg::Flush) => {
-                    self.flush()?;
+                    let r = self.flush();
+                    self.on_error(r)?;
                     last_flush = Instant::now();
                 }
-                Ok(msg) => self.handle(msg)?,
+                Ok(msg) => self.accept(msg)?,
                 Err(RecvTimeoutError::Timeout) => {}
             }
+            if self
+                .waiting_since
+                .is_some_and(|t| t.elapsed() >= self.config.new_stream_wait)
+            {
+                let r = self.start_next_file();
+                self.on_error(r)?;
+            }
             if last_flush.elapsed() >= self.config.flush_interval {
-                self.flush()?;
+                let r = self.flush();
+                self.on_error(r)?;
                 last_flush = Instant::now();
             }
+        }
+    }
+
+    /// Handles one message, or counts and discards it during an outage.
+    fn accept(&mut self, msg: RecordMsg) -> Result<(), StoreError> {
+        if self.outage.is_some() && !self.try_resume(&msg) {
+            self.discard(msg);
+            return Ok(());
+        }
+        let dropped = Dropped::of(&msg);
+        let r = self.handle(msg);
+        if r.is_err() {
+            // The message that met the error is not written either.
+            self.count_dropped(dropped);
+        }
+        self.on_error(r)
+    }
+
+    /// Passes `Ok` on; turns an error into an outage when retrying is configured.
+    fn on_error(&mut self, r: Result<(), StoreError>) -> Result<(), StoreError> {
+        let Err(err) = r else {
+            return Ok(());
+        };
+        let Some(retry) = self.config.retry_after else {
+            return Err(err);
+        };
+        self.stats.errors += 1;
+        self.config.live.write_errors.fetch_add(1, Relaxed);
+        self.config.live.failing.store(true, Relaxed);
+        let abandoned = self.abandon_current();
+        // Messages waiting for the next file are lost with it.
+        self.waiting.clear();
+        self.waiting_since = None;
+        for msg in std::mem::take(&mut self.held) {
+            let d = Dropped::of(&msg);
+            self.count_dropped(d);
+        }
+        tracing::error!(
+            error = %err,
+            abandoned = abandoned.as_deref().unwrap_or("none"),
+            retry_s = retry.as_secs_f64(),
+            "cannot write the record: the open file is left as it was at its last flush; \
+             what arrives is counted and discarded until a new file can be written"
+        );
+        let now = Instant::now();
+        let pending = self
+            .outage
+            .take()
+            .map(|o| (o.msgs, o.samples, o.rows, o.since));
+        let (msgs, samples, rows, since) = pending.unwrap_or((0, 0, 0, now));
+        self.outage = Some(Outage {
+            since,
+            next_try: now + retry,
+            msgs,
+            samples,
+            rows,
+        });
+        Ok(())
+    }
+
+    /// Drops the open file without a clean close (its last flush is what a reader sees; the
+    /// index keeps `closed: null` for it) and keeps each stream's cursor at the file's end.
+    fn abandon_current(&mut self) -> Option<String> {
+        let file = self.current.take()?;
+        for key in file.writer.streams() {
+            if file.writer.meta(key) != self.streams.get(&key) {
+                self.cursors.remove(&key);
+            } else if let Some(cursor) = file.writer.cursor(key) {
+                self.cursors.insert(key, cursor);
+            }
+        }
+        let name = self.index.files[file.entry].file.clone();
+        self.stats.bytes_written += file.writer.file_size();
+        drop(file);
+        Some(name)
+    }
+
+    /// During an outage: when a retry is due and `msg` carries data, tries to open a new file.
+    /// True when writing resumed.
+    fn try_resume(&mut self, msg: &RecordMsg) -> bool {
+        let Some(outage) = &mut self.outage else {
+            return true;
+        };
+        if Instant::now() < outage.next_try || msg_stream(msg).is_none() {
+            return false;
+        }
+        let key = msg_stream(msg).expect("checked above");
+        if !self.streams.contains_key(&key) {
+            return false;
+        }
+        match self.ensure_open().map(|f| f.writer.path().to_path_buf()) {
+            Ok(path) => {
+                let o = self.outage.take().expect("in an outage");
+                self.config.live.failing.store(false, Relaxed);
+                tracing::info!(
+                    file = %path.display(),
+                    after_s = o.since.elapsed().as_secs_f64(),
+                    messages = o.msgs,
+                    samples = o.samples,
+                    rows = o.rows,
+                    "record writing resumed in a new file; what arrived meanwhile was not written \
+                     and shows there as a gap"
+                );
+                true
+            }
+            Err(e) => {
+                let retry = self.config.retry_after.unwrap_or(Duration::from_secs(1));
+                let outage = self.outage.as_mut().expect("in an outage");
+                outage.next_try = Instant::now() + retry;
+                tracing::warn!(
+                    error = %e,
+                    failing_s = outage.since.elapsed().as_secs_f64(),
+                    discarded_messages = outage.msgs,
+                    "the record still cannot be written"
+                );
+                false
+            }
+        }
+    }
+
+    /// Counts a message that cannot be written; keeps what the next file needs (stream
+    /// declarations and capture restarts).
+    fn discard(&mut self, msg: RecordMsg) {
+        match msg {
+            RecordMsg::OpenStream(meta) => {
+                let key = meta.key();
+                if self.streams.get(&key).is_some_and(|m| *m != meta) {
+                    self.cursors.remove(&key);
+                }
+                self.streams.insert(key, meta);
+                return;
+            }
+            RecordMsg::Segment {
+                stream,
+                capture_id,
+                t0_unix_ns,
+            } => {
+                // The next file starts this capture at its grid position 0; what was not
+                // written of it shows there as a hole.
+                self.cursors.insert(
+                    stream,
+                    StreamCursor {
+                        capture_id,
+                        capture_t0_unix_ns: t0_unix_ns,
+                        next_position: 0,
+                    },
+                );
+            }
+            RecordMsg::Flush | RecordMsg::Shutdown => return,
+            _ => {}
+        }
+        let dropped = Dropped::of(&msg);
+        self.count_dropped(dropped);
+    }
+
+    fn count_dropped(&mut self, d: Dropped) {
+        let live = &self.config.live;
+        live.dropped_msgs.fetch_add(1, Relaxed);
+        live.dropped_samples.fetch_add(d.samples, Relaxed);
+        live.dropped_rows.fetch_add(d.rows, Relaxed);
+        self.stats.dropped_msgs += 1;
+        self.stats.dropped_samples += d.samples;
+        self.stats.dropped_rows += d.rows;
+        if let Some(o) = &mut self.outage {
+            o.msgs += 1;
+            o.samples += d.samples;
+            o.rows += d.rows;
         }
     }
 
     fn finish(mut self, result: Result<(), StoreError>) -> Result<SinkStats, StoreError> {
         match result {
             Ok(()) => {
+                if let Some(o) = &self.outage {
+                    tracing::error!(
+                        failing_s = o.since.elapsed().as_secs_f64(),
+                        messages = o.msgs,
+                        samples = o.samples,
+                        rows = o.rows,
+                        "stopping while the record cannot be written; the end of every stream \
+                         since the outage began is not recorded"
+                    );
+                }
+                if self.waiting_since.is_some() {
+                    if let Err(e) = self.start_next_file() {
+                        self.stats.errors += 1;
+                        tracing::error!(error = %e, "record writer stopped");
+                        let _ = self.close_current(close_reason::SHUTDOWN);
+                        return Err(e);
+                    }
+                }
                 self.close_current(close_reason::SHUTDOWN)?;
                 Ok(self.stats)
             }
@@ -380,13 +693,27 @@ impl SinkState {
                         "stream metadata changed; rotating"
                     );
                 }
-                self.close_current(close_reason::ROTATED)?;
+                if self.config.new_stream_wait.is_zero() {
+                    self.close_current(close_reason::ROTATED)?;
+                } else {
+                    // Hold this stream's messages for a while: other new streams may follow,
+                    // and one new file can take them all.
+                    self.waiting.insert(key);
+                    self.waiting_since.get_or_insert_with(Instant::now);
+                }
             }
             return Ok(());
         }
         let Some(key) = msg_stream(&msg) else {
             return Ok(());
         };
+        if self.waiting.contains(&key) {
+            self.held.push(msg);
+            if self.held.len() > MAX_HELD_MSGS {
+                self.start_next_file()?;
+            }
+            return Ok(());
+        }
         if !self.streams.contains_key(&key) {
             self.stats.unknown_stream_msgs += 1;
             tracing::warn!(
@@ -396,8 +723,14 @@ impl SinkState {
             );
             return Ok(());
         }
+        self.config.write_fault.check(&self.config.folder)?;
         if matches!(msg, RecordMsg::Samples { .. }) && self.rotation_due() {
-            self.close_current(close_reason::ROTATED)?;
+            if self.waiting_since.is_some() {
+                // The next file takes the waiting streams too.
+                self.start_next_file()?;
+            } else {
+                self.close_current(close_reason::ROTATED)?;
+            }
         }
         let file = self.ensure_open()?;
         let writer = &mut file.writer;
@@ -427,6 +760,25 @@ impl SinkState {
         Ok(())
     }
 
+    /// Closes the current file and writes the held messages of the waiting streams, which
+    /// opens the next file with every known stream.
+    fn start_next_file(&mut self) -> Result<(), StoreError> {
+        self.waiting_since = None;
+        self.waiting.clear();
+        self.close_current(close_reason::ROTATED)?;
+        let mut msgs = std::mem::take(&mut self.held).into_iter();
+        while let Some(msg) = msgs.next() {
+            let d = Dropped::of(&msg);
+            if let Err(e) = self.handle(msg) {
+                // This one is lost; the rest stay held for the caller to count.
+                self.count_dropped(d);
+                self.held.extend(msgs);
+                return Err(e);
+            }
+        }
+        Ok(())
+    }
+
     fn rotation_due(&self) -> bool {
         if self.config.single_file.is_some() {
             return false;
@@ -445,6 +797,7 @@ impl SinkState {
 
     fn ensure_open(&mut self) -> Result<&mut OpenFile, StoreError> {
         if self.current.is_none() {
+            self.config.write_fault.check(&self.config.folder)?;
             let now = now_unix_ns();
             let seq = self.next_seq;
             let name = match &self.config.single_file {
@@ -519,6 +872,7 @@ impl SinkState {
 
     fn flush(&mut self) -> Result<(), StoreError> {
         if let Some(file) = &mut self.current {
+            self.config.write_fault.check(file.writer.path())?;
             file.writer.flush()?;
             let live = self.stats.bytes_written + file.writer.file_size();
             self.config
@@ -569,6 +923,35 @@ impl SinkState {
             return Ok(());
         }
         self.index.save(&self.config.folder)
+    }
+}
+
+/// What a discarded message would have written.
+#[derive(Debug, Clone, Copy, Default)]
+struct Dropped {
+    samples: u64,
+    rows: u64,
+}
+
+impl Dropped {
+    fn of(msg: &RecordMsg) -> Dropped {
+        match msg {
+            RecordMsg::Samples { samples, .. } => Dropped {
+                samples: samples.len() as u64,
+                rows: 0,
+            },
+            RecordMsg::Gap { len, .. } => Dropped {
+                samples: *len,
+                rows: 0,
+            },
+            RecordMsg::Window { .. } | RecordMsg::Peak { .. } | RecordMsg::Indicator { .. } => {
+                Dropped {
+                    samples: 0,
+                    rows: 1,
+                }
+            }
+            _ => Dropped::default(),
+        }
     }
 }
 
