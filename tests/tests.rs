@@ -6,6 +6,10 @@ mod advice;
 mod analytics;
 mod basis;
 mod bench;
+/// Broker mode: NATS JetStream workers with one killed, the MQTT source (real servers on
+/// loopback).
+#[cfg(feature = "hdf5-store")]
+mod broker;
 mod features;
 /// Seeded mutation fuzzing of every input decoder, and the regressions it found.
 #[cfg(feature = "hdf5-store")]

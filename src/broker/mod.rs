@@ -20,12 +20,14 @@
 //! - [`lease`]: partition leases in the broker's key-value store.
 //! - [`worker`]: the `work` role.
 //! - [`record`]: the `record` role's window source, and the dashboard publisher.
+//! - [`server`]: a loopback NATS server as a child process (tests, `csgate bench --broker`).
 
 pub mod config;
 pub mod lease;
 pub mod message;
 pub mod publish;
 pub mod record;
+pub mod server;
 pub mod worker;
 
 pub use config::{BrokerConfig, Role};
@@ -208,8 +210,19 @@ impl Broker {
             names: Names::new(&config.name),
             config: config.clone(),
         };
-        broker.check_partitions().await?;
-        Ok(broker)
+        // A server just started answers JetStream requests a moment after it accepts clients.
+        let mut tries = 0;
+        loop {
+            match broker.check_partitions().await {
+                Ok(()) => return Ok(broker),
+                Err(e @ BrokerError::Partitions { .. }) => return Err(e),
+                Err(e) if tries >= 20 => return Err(e),
+                Err(_) => {
+                    tries += 1;
+                    tokio::time::sleep(Duration::from_millis(250)).await;
+                }
+            }
+        }
     }
 
     fn storage(&self) -> stream::StorageType {
