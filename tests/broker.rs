@@ -225,8 +225,7 @@ async fn three_workers_one_killed_every_window_recorded_once() {
     let js = async_nats::jetstream::new(async_nats::connect(url.as_str()).await.unwrap());
     let mut ready = false;
     for _ in 0..300 {
-        if kv_keys(&js, "csgate_workers").await == 3 && kv_keys(&js, "csgate_leases").await == 12
-        {
+        if kv_keys(&js, "csgate_workers").await == 3 && kv_keys(&js, "csgate_leases").await == 12 {
             ready = true;
             break;
         }
@@ -243,9 +242,14 @@ async fn three_workers_one_killed_every_window_recorded_once() {
     };
     let sc = scenario.clone();
     let sender = tokio::spawn(async move {
-        send_to_target(sim, &sc, ingest, &plan, Pace::RealTime { speed: 0.1 }, |_| {
-            Ok(())
-        })
+        send_to_target(
+            sim,
+            &sc,
+            ingest,
+            &plan,
+            Pace::RealTime { speed: 0.1 },
+            |_| Ok(()),
+        )
         .await
     });
 
@@ -281,15 +285,24 @@ async fn three_workers_one_killed_every_window_recorded_once() {
     let delivered: BTreeSet<String> = faults
         .delivered
         .iter()
-        .map(|k| format!("{}.{}.{}.{}", k.stream.node, k.stream.channel, k.capture_id, k.seq))
+        .map(|k| {
+            format!(
+                "{}.{}.{}.{}",
+                k.stream.node, k.stream.channel, k.capture_id, k.seq
+            )
+        })
         .collect();
 
     // Wait (bounded count) until every delivered window was published and recorded: the
     // windows stream is a work queue, empty once the recorder took everything.
     let mut done = false;
     for _ in 0..1200 {
-        let published: BTreeSet<String> =
-            seen.lock().unwrap().iter().map(|(_, _, id)| id.clone()).collect();
+        let published: BTreeSet<String> = seen
+            .lock()
+            .unwrap()
+            .iter()
+            .map(|(_, _, id)| id.clone())
+            .collect();
         let queued = match js.get_stream("CSGATE_WINDOWS").await {
             Ok(mut s) => s.info().await.map(|i| i.state.messages).unwrap_or(1),
             Err(_) => 1,
@@ -300,7 +313,10 @@ async fn three_workers_one_killed_every_window_recorded_once() {
         }
         tokio::time::sleep(Duration::from_millis(50)).await;
     }
-    assert!(done, "not every delivered window was reconstructed and taken");
+    assert!(
+        done,
+        "not every delivered window was reconstructed and taken"
+    );
 
     // Takeover: per stream the killed worker published, the first window another worker
     // published after the kill.

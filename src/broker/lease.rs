@@ -96,7 +96,11 @@ impl Leases {
         }
         let held: Vec<(u32, u64)> = self.held.iter().map(|(p, r)| (*p, *r)).collect();
         for (p, rev) in held {
-            match self.leases.update(key(p), self.id.clone().into(), rev).await {
+            match self
+                .leases
+                .update(key(p), self.id.clone().into(), rev)
+                .await
+            {
                 Ok(r) => {
                     self.held.insert(p, r);
                 }

@@ -111,7 +111,11 @@ pub fn encode(w: &SolvedWindow, frame: &[u8]) -> Vec<u8> {
     }
     out.extend_from_slice(&u32_of(w.trust.map_or(0, |t| t.holdout)).to_le_bytes());
     out.extend_from_slice(&u32_of(w.trust.map_or(0, |t| t.effective_support)).to_le_bytes());
-    out.extend_from_slice(&w.trust.map_or(f64::NAN, |t| t.min_measurements).to_le_bytes());
+    out.extend_from_slice(
+        &w.trust
+            .map_or(f64::NAN, |t| t.min_measurements)
+            .to_le_bytes(),
+    );
     out.extend_from_slice(&u32_of(w.trust.map_or(0, |t| t.holdout_iterations)).to_le_bytes());
     out.extend_from_slice(&u32_of(report.map_or(0, |r| r.fista_runs)).to_le_bytes());
     out.extend_from_slice(&[0u8; 4]);
@@ -131,7 +135,9 @@ pub fn encode(w: &SolvedWindow, frame: &[u8]) -> Vec<u8> {
 }
 
 fn take<const N: usize>(b: &[u8], at: usize) -> [u8; N] {
-    b[at..at + N].try_into().expect("length checked by the caller")
+    b[at..at + N]
+        .try_into()
+        .expect("length checked by the caller")
 }
 
 /// Decodes a window message; the frame is parsed (CRC, layout, validation) with `limits` but
@@ -298,7 +304,10 @@ mod tests {
             (r.iterations, r.support, r.lambda, r.relative_residual),
             (77, 11, 0.25, 0.05)
         );
-        assert_eq!((r.stop, r.converged, r.debiased, r.fista_runs), (StopReason::DualityGap, true, true, 2));
+        assert_eq!(
+            (r.stop, r.converged, r.debiased, r.fista_runs),
+            (StopReason::DualityGap, true, true, 2)
+        );
         assert_eq!(back.trust, w.trust);
         assert_eq!((back.solve_time_us, back.trust_time_us), (123.5, 20.0));
     }

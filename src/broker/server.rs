@@ -31,7 +31,9 @@ pub fn find_binary() -> Option<PathBuf> {
 
 /// A free TCP port on loopback (bound and released; the usual test idiom).
 pub fn free_port() -> std::io::Result<u16> {
-    Ok(TcpListener::bind((Ipv4Addr::LOCALHOST, 0))?.local_addr()?.port())
+    Ok(TcpListener::bind((Ipv4Addr::LOCALHOST, 0))?
+        .local_addr()?
+        .port())
 }
 
 /// A running server; killed on drop.
@@ -67,7 +69,9 @@ impl LocalServer {
             }
             std::thread::sleep(Duration::from_millis(50));
         }
-        Err(std::io::Error::other("nats-server did not listen within 10 s"))
+        Err(std::io::Error::other(
+            "nats-server did not listen within 10 s",
+        ))
     }
 
     /// The client URL.

@@ -33,8 +33,8 @@ use crate::pipeline::reconstruct::{
 };
 use crate::pipeline::run::PipelineConfig;
 use async_nats::jetstream::consumer::{pull, AckPolicy, DeliverPolicy};
-use async_nats::jetstream::message::PublishMessage as Publish;
 use async_nats::jetstream::message::Acker;
+use async_nats::jetstream::message::PublishMessage as Publish;
 use futures::StreamExt;
 use serde::Serialize;
 use std::collections::{HashMap, VecDeque};
@@ -309,7 +309,12 @@ pub async fn run(
                 broker.names.window_subject(h.stream.node, h.stream.channel),
                 Publish::build()
                     .payload(body.into())
-                    .message_id(window_msg_id(h.stream.node, h.stream.channel, h.capture_id, h.seq))
+                    .message_id(window_msg_id(
+                        h.stream.node,
+                        h.stream.channel,
+                        h.capture_id,
+                        h.seq,
+                    ))
                     .header(WORKER_HEADER, id.as_str()),
             )
             .await

@@ -6,6 +6,7 @@ pub mod demo;
 #[cfg(feature = "hdf5-store")]
 pub mod inspect;
 pub mod plan;
+pub mod publish;
 pub mod replay;
 pub mod score;
 pub mod serve;

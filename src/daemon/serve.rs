@@ -38,8 +38,8 @@ use crate::broker::{Broker, BrokerError, Role};
 use crate::features::FeatureEvent;
 use crate::packet::Packet;
 use crate::pipeline::events::{EventError, EventSink};
-use crate::pipeline::run::{Arrival, PipelineOutputs};
 use crate::pipeline::run::{self as pipeline, PipelineError, PipelineStats, PipelineSummary};
+use crate::pipeline::run::{Arrival, PipelineOutputs};
 use crate::sources::tcp::{self, IngestError, IngestSnapshot, IngestStats};
 use crate::store::layout::WindowRow;
 use crate::store::StreamKey;
@@ -177,14 +177,16 @@ impl Gateway {
         config_digest: String,
     ) -> Result<Gateway, DaemonError> {
         let ingest = if !config.broker.enabled() || config.broker.has(Role::Ingest) {
-            Some(TcpListener::bind(config.ingest.listen).await.map_err(|source| {
-                DaemonError::Bind {
-                    what: "nodes",
-                    key: "ingest.listen",
-                    addr: config.ingest.listen,
-                    source,
-                }
-            })?)
+            Some(
+                TcpListener::bind(config.ingest.listen)
+                    .await
+                    .map_err(|source| DaemonError::Bind {
+                        what: "nodes",
+                        key: "ingest.listen",
+                        addr: config.ingest.listen,
+                        source,
+                    })?,
+            )
         } else {
             None
         };

@@ -974,7 +974,7 @@ impl Dispatcher<'_> {
                 };
                 self.to_analytics(AnalyticsMsg::Window {
                     slot: s,
-                    start: start,
+                    start,
                     len: u64::from(h.window_len),
                     trust: trust.as_ref().map(|t| (t.cv_error, t.low())),
                 })?;
@@ -991,7 +991,7 @@ impl Dispatcher<'_> {
                     residual: report.relative_residual,
                     support: report.support as u32,
                     stop_reason: stop_code(report.stop, packet.indices.len(), h.window_len),
-                    solve_time_us: solve_time_us,
+                    solve_time_us,
                     cv_error,
                     trust: trust_code,
                 };

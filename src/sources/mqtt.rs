@@ -193,7 +193,8 @@ pub async fn run(
                         pause = Duration::from_millis(100);
                         tracing::info!(filter = %filter, session_present = ack.session_present, "mqtt connected");
                         if !ack.session_present {
-                            if let Err(e) = client.subscribe(filter.clone(), QoS::AtLeastOnce).await {
+                            if let Err(e) = client.subscribe(filter.clone(), QoS::AtLeastOnce).await
+                            {
                                 tracing::warn!(error = %e, "mqtt subscribe failed");
                             }
                         }
@@ -285,7 +286,11 @@ fn accept(
     };
     if packet.header.stream.node != topic_node {
         stats.validation_errors.fetch_add(1, Relaxed);
-        tracing::warn!(topic, node = packet.header.stream.node, "mqtt frame of another node than its topic; dropped");
+        tracing::warn!(
+            topic,
+            node = packet.header.stream.node,
+            "mqtt frame of another node than its topic; dropped"
+        );
         return None;
     }
     Some(packet)
