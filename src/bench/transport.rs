@@ -14,7 +14,7 @@
 //! broker's: publishing, storing and delivering every frame and every reconstructed window
 //! (with the window's samples, 4 bytes per grid instant) and the acknowledgements.
 
-use super::{machine_info, peak_rss_mib, workload_scenario, BenchError, MachineInfo, Workload};
+use super::{load_average_1m, machine_info, peak_rss_mib, workload_scenario, BenchError, MachineInfo, Workload};
 use crate::broker::server::{find_binary, LocalServer};
 use crate::broker::{BrokerConfig, Role};
 use crate::daemon::{Gateway, GatewayConfig, ServeReport, Shutdown};
@@ -70,6 +70,9 @@ pub struct TransportReport {
     pub broker: PathFigures,
     /// Broker windows/s over TCP windows/s.
     pub ratio: f64,
+    /// The machine's 1-minute load average before the runs (other work on the machine skews
+    /// both figures).
+    pub load_1m_before: Option<f64>,
     /// Peak resident memory of this process over both runs (the NATS server not included),
     /// MiB.
     pub peak_rss_mib: Option<f64>,
@@ -106,6 +109,7 @@ pub fn measure_transport(opts: &TransportOptions) -> Result<TransportReport, Ben
         )));
     }
     let scenario = workload_scenario(&opts.workload)?;
+    let load_1m_before = load_average_1m();
     let nats = opts
         .nats_server
         .clone()
@@ -238,6 +242,7 @@ pub fn measure_transport(opts: &TransportOptions) -> Result<TransportReport, Ben
         ratio: broker.windows_per_s / tcp.windows_per_s.max(1e-9),
         tcp,
         broker,
+        load_1m_before,
         peak_rss_mib: peak_rss_mib(),
     })
 }

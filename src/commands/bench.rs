@@ -225,8 +225,11 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
             println!("{}", serde_json::to_string_pretty(&r)?);
         } else {
             println!(
-                "machine     {} ({} cores)",
-                r.machine.cpu_model, r.machine.cores
+                "machine     {} ({} cores), load average {} before the runs",
+                r.machine.cpu_model,
+                r.machine.cores,
+                r.load_1m_before
+                    .map_or("unknown".to_string(), |l| format!("{l:.2}"))
             );
             println!(
                 "workload    {} channels x {} s, n {} hop {} m/n {}, {} frames, {} solver threads",
