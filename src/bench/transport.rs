@@ -14,7 +14,10 @@
 //! broker's: publishing, storing and delivering every frame and every reconstructed window
 //! (with the window's samples, 4 bytes per grid instant) and the acknowledgements.
 
-use super::{load_average_1m, machine_info, peak_rss_mib, workload_scenario, BenchError, MachineInfo, Workload};
+use super::{
+    load_average_1m, machine_info, peak_rss_mib, workload_scenario, BenchError, MachineInfo,
+    Workload,
+};
 use crate::broker::server::{find_binary, LocalServer};
 use crate::broker::{BrokerConfig, Role};
 use crate::daemon::{Gateway, GatewayConfig, ServeReport, Shutdown};
