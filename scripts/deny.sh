@@ -18,6 +18,8 @@ if ! cargo deny --version 2>/dev/null | grep -qx "cargo-deny $DENY_VERSION"; the
   cargo install --locked --quiet cargo-deny --version "$DENY_VERSION"
 fi
 
+# `--offline` needs every crate of the lock file (all targets) in the local registry cache.
+cargo fetch --locked --quiet
 cargo deny --offline check bans licenses sources
 
 if [ -d target/advisory-db ] && [ -n "$(ls -A target/advisory-db 2>/dev/null)" ]; then

@@ -1,6 +1,9 @@
 #!/usr/bin/env bash
 # Installs what csgate needs on a fresh Debian/Ubuntu machine, and only what is missing:
 #   - the system HDF5 library (libhdf5-dev, pkg-config; hdf5-tools for h5clear/h5dump);
+#   - the NATS server (nats-server, JetStream) and the MQTT broker (mosquitto) that the broker
+#     tests start on loopback themselves (Debian starts no service of its own in a container;
+#     where it does, the tests use ports of their own);
 #   - with --python: a local virtual environment .venv with the Python reference libraries
 #     the tests compare against (tests/python/requirements.txt).
 # Safe to run again; it does nothing when everything is present.
@@ -25,6 +28,17 @@ if ! command -v pkg-config >/dev/null 2>&1 || ! pkg-config --exists hdf5 || ! co
   as_root apt-get update -qq
   DEBIAN_FRONTEND=noninteractive as_root apt-get install -y -qq --no-install-recommends \
     libhdf5-dev pkg-config hdf5-tools >/dev/null
+fi
+
+has() { command -v "$1" >/dev/null 2>&1 || [ -x "/usr/sbin/$1" ]; }
+missing=()
+has nats-server || missing+=(nats-server)
+has mosquitto || missing+=(mosquitto)
+if [ "${#missing[@]}" -gt 0 ]; then
+  echo "setup: installing the broker servers for the tests (${missing[*]})"
+  as_root apt-get update -qq
+  DEBIAN_FRONTEND=noninteractive as_root apt-get install -y -qq --no-install-recommends \
+    "${missing[@]}" >/dev/null
 fi
 
 if [ "$want_python" -eq 1 ]; then

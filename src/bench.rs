@@ -1105,3 +1105,6 @@ mod tests {
         assert_eq!(Workload::default().windows_per_channel(1.0), 11);
     }
 }
+
+/// Broker path against direct TCP (`csgate bench --broker`).
+pub mod transport;

@@ -23,6 +23,8 @@
 //! - [`store`]: HDF5 record files (behind the default-on `hdf5-store` feature).
 //! - [`pipeline`]: wiring of the stages, worker pool, shutdown.
 //! - [`features`]: spectra, peaks, machine fault frequencies, severity, trust.
+//! - [`broker`] (feature `hdf5-store`): broker mode on NATS JetStream (ingest, workers on
+//!   leased partitions, recorder; docs/scale-out.md).
 //! - [`daemon`]: the gateway daemon (`csgate serve`): configuration, metrics, event feed,
 //!   HTTP endpoint, shutdown (behind `hdf5-store`).
 //! - [`bench`] (feature `hdf5-store`): the measurements of `csgate bench` (real-time capacity,
@@ -46,6 +48,8 @@ pub mod advice;
 pub mod basis;
 #[cfg(feature = "hdf5-store")]
 pub mod bench;
+#[cfg(feature = "hdf5-store")]
+pub mod broker;
 #[cfg(feature = "hdf5-store")]
 pub mod daemon;
 pub mod features;

@@ -32,6 +32,8 @@ enum Command {
     Score(commands::score::ScoreArgs),
     /// Run the gateway daemon from a TOML configuration (ingest, records, metrics, feeds).
     Serve(commands::serve::ServeArgs),
+    /// Publish the windows of packet logs to a broker's frames stream (broker mode).
+    Publish(commands::publish::PublishArgs),
     /// Measure how many sensor channels this machine reconstructs in real time.
     Bench(commands::bench::BenchArgs),
     /// Bounded load test: simulated nodes at real-time pace into a gateway on loopback.
@@ -57,6 +59,7 @@ fn main() -> ExitCode {
         Command::Replay(args) => commands::replay::run(args),
         Command::Score(args) => commands::score::run(args),
         Command::Serve(args) => commands::serve::run(args),
+        Command::Publish(args) => commands::publish::run(args),
         Command::Bench(args) => commands::bench::run(args),
         Command::Loadtest(args) => commands::loadtest::run(args),
         Command::Plan(args) => commands::plan::run(args),

@@ -6,6 +6,10 @@ mod advice;
 mod analytics;
 mod basis;
 mod bench;
+/// Broker mode: NATS JetStream workers with one killed, the MQTT source (real servers on
+/// loopback).
+#[cfg(feature = "hdf5-store")]
+mod broker;
 /// Fault injection against the running gateway: cut frames, reconnects, duplicates and late
 /// windows, refused frames, idle peers, the connection cap, a failing record folder, SIGKILL;
 /// and the load test's short run.

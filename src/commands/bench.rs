@@ -107,6 +107,15 @@ pub struct BenchArgs {
     /// Run one fuzz case again from a failure line: TARGET:SEED.
     #[arg(long, value_name = "TARGET:SEED", value_parser = super::bench_fuzz::parse_case, conflicts_with = "fuzz")]
     pub fuzz_case: Option<(csgate::fuzz::Target, u64)>,
+    /// Broker path against direct TCP: windows per second of the same simulated frames
+    /// through a standalone gateway and through a NATS JetStream server on loopback with an
+    /// ingest-and-record gateway and a worker (uses --channels, --seconds, --n, --hop,
+    /// --m-over-n, --workers, --seed).
+    #[arg(long, conflicts_with_all = ["solve_set", "long_replay", "fuzz"])]
+    pub broker: bool,
+    /// The nats-server binary of --broker (default: from PATH, or /usr/sbin/nats-server).
+    #[arg(long, value_name = "PATH", requires = "broker")]
+    pub nats_server: Option<PathBuf>,
     /// Print one JSON object instead of text.
     #[arg(long)]
     pub json: bool,
@@ -220,6 +229,56 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
     }
 
     let channels = args.channels.unwrap_or((4 * workers).max(8));
+    if args.broker {
+        let opts = csgate::bench::transport::TransportOptions {
+            workload: Workload {
+                channels,
+                n: args.n,
+                hop,
+                m_over_n: args.m_over_n,
+                seed: args.seed,
+            },
+            seconds: args.seconds,
+            workers,
+            nats_server: args.nats_server.clone(),
+            scratch_in: args.scratch.clone(),
+        };
+        let r = csgate::bench::transport::measure_transport(&opts)
+            .context("broker against TCP benchmark")?;
+        if args.json {
+            println!("{}", serde_json::to_string_pretty(&r)?);
+        } else {
+            println!(
+                "machine     {} ({} cores), load average {} before the runs",
+                r.machine.cpu_model,
+                r.machine.cores,
+                r.load_1m_before
+                    .map_or("unknown".to_string(), |l| format!("{l:.2}"))
+            );
+            println!(
+                "workload    {} channels x {} s, n {} hop {} m/n {}, {} frames, {} solver threads",
+                r.workload.channels,
+                r.seconds,
+                r.workload.n,
+                r.workload.hop,
+                r.workload.m_over_n,
+                r.frames,
+                r.workers
+            );
+            println!(
+                "direct TCP  {} windows in {:.2} s: {:.1} windows/s",
+                r.tcp.windows, r.tcp.wall_s, r.tcp.windows_per_s
+            );
+            println!(
+                "broker      {} windows in {:.2} s: {:.1} windows/s ({:.2} x direct)",
+                r.broker.windows, r.broker.wall_s, r.broker.windows_per_s, r.ratio
+            );
+            if let Some(m) = r.peak_rss_mib {
+                println!("peak RSS    {m:.0} MiB (this process; the NATS server not included)");
+            }
+        }
+        return Ok(ExitCode::SUCCESS);
+    }
     let opts = CapacityOptions {
         workload: Workload {
             channels,

@@ -7,6 +7,7 @@ pub mod demo;
 pub mod inspect;
 pub mod loadtest;
 pub mod plan;
+pub mod publish;
 pub mod replay;
 pub mod score;
 pub mod serve;

@@ -17,7 +17,9 @@ workers, stitches each stream and writes rotating HDF5 records into the record f
 serves /metrics (OpenMetrics text), /health (JSON) and /events (JSON lines, streamed) over HTTP. \
 SIGINT or SIGTERM stops accepting, drains (every complete window is reconstructed, every record \
 flushed and closed) and exits 0; a second signal shortens the drain by discarding the packets \
-still waiting. A restart continues the record series in a new file."
+still waiting. A restart continues the record series in a new file. With [broker] roles \
+(docs/scale-out.md) the process publishes frames to NATS JetStream (ingest), reconstructs the \
+partitions it leases (work) and/or records what workers publish (record)."
 )]
 pub struct ServeArgs {
     /// The configuration file.
@@ -60,8 +62,16 @@ pub fn run(args: ServeArgs) -> anyhow::Result<ExitCode> {
     let path = args.config.expect("clap requires --config");
     let config = GatewayConfig::load(&path)?;
     if args.check {
+        let roles = if config.broker.enabled() {
+            format!(
+                "broker roles {:?} on {}, ",
+                config.broker.roles, config.broker.url
+            )
+        } else {
+            String::new()
+        };
         println!(
-            "{}: valid. nodes on {}, http {}, {} enrolled node(s), {} worker(s), records in {}",
+            "{}: valid. {roles}nodes on {}, http {}, {} enrolled node(s), {} worker(s), records in {}",
             path.display(),
             config.ingest.listen,
             if config.http.enabled {

@@ -128,6 +128,10 @@ pub struct GatewayConfig {
     pub shutdown: ShutdownSection,
     /// `[advice]`: the sampling-advice rule for nodes with `advise = true`.
     pub advice: crate::advice::AdviceConfig,
+    /// `[mqtt]`: the MQTT source for nodes that publish.
+    pub mqtt: crate::sources::mqtt::MqttConfig,
+    /// `[broker]`: broker mode (roles, NATS server, partitions, leases; docs/scale-out.md).
+    pub broker: crate::broker::BrokerConfig,
 }
 
 /// `[site]`.
@@ -463,6 +467,21 @@ impl GatewayConfig {
             return Err(bad(
                 &format!("node[{i}].advise"),
                 "sampling advice needs the trust figures: set pipeline.trust.enabled = true".into(),
+            ));
+        }
+        if let Err((key, expected)) = self.broker.check() {
+            return Err(bad(key, expected));
+        }
+        if let Err((key, expected)) = self.mqtt.check() {
+            return Err(bad(key, expected));
+        }
+        if self.mqtt.enabled
+            && self.broker.enabled()
+            && !self.broker.has(crate::broker::Role::Ingest)
+        {
+            return Err(bad(
+                "mqtt.enabled",
+                "the MQTT source feeds the ingest: add \"ingest\" to broker.roles or set mqtt.enabled = false".into(),
             ));
         }
         if self.ingest.max_connections == 0 {

@@ -19,17 +19,27 @@
 //! discarded (and counted); the windows already in the pipeline are still finished, so every
 //! record is closed complete. A restart opens the next file of the series; the sink never
 //! writes to an existing file.
+//!
+//! Broker mode (`broker.roles`, docs/scale-out.md) swaps the ends of this chain: the `ingest`
+//! role sends the forwarder's packets to the frame publisher instead of the pipeline; the
+//! `record` role feeds the pipeline with the windows the workers publish (and publishes the
+//! feed's lines for dashboards); the `work` role runs [`crate::broker::worker`] beside. Parts
+//! a role does not use stay idle (no listener is bound, no record file is created).
 
 use super::config::GatewayConfig;
 use super::feed::{EventFeed, GatewayEvent};
 use super::http::{self, HttpState};
 use super::metrics::{GatewayMetrics, MetricSources};
 use crate::advice::{AdviceBoard, AdviceConfig, Advisor, WindowObservation};
+use crate::broker::publish::PublishStats;
+use crate::broker::record::RecordStats;
+use crate::broker::worker::{WorkerSnapshot, WorkerStats};
+use crate::broker::{Broker, BrokerError, Role};
 use crate::features::FeatureEvent;
 use crate::packet::Packet;
 use crate::pipeline::events::{EventError, EventSink};
-use crate::pipeline::run::PipelineOutputs;
 use crate::pipeline::run::{self as pipeline, PipelineError, PipelineStats, PipelineSummary};
+use crate::pipeline::run::{Arrival, PipelineOutputs};
 use crate::sources::tcp::{self, IngestError, IngestSnapshot, IngestStats};
 use crate::store::layout::WindowRow;
 use crate::store::StreamKey;
@@ -73,6 +83,9 @@ pub enum DaemonError {
     /// The record writer stopped.
     #[error(transparent)]
     Store(#[from] StoreError),
+    /// The broker failed (connection, streams, leases).
+    #[error(transparent)]
+    Broker(#[from] BrokerError),
     /// A stage thread panicked.
     #[error("the {0} stage panicked")]
     Panicked(&'static str),
@@ -129,6 +142,26 @@ pub struct ServeReport {
     pub forced: bool,
     /// Seconds from the first signal to the end.
     pub drain_s: f64,
+    /// Broker-mode figures (absent for a standalone gateway).
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub broker: Option<BrokerReport>,
+}
+
+/// What the broker roles of a finished run did.
+#[derive(Debug, Clone, Default, Serialize)]
+pub struct BrokerReport {
+    /// `ingest`: frames stored in the frames stream.
+    pub frames_published: u64,
+    /// `ingest`: frames the broker already had.
+    pub frames_duplicate: u64,
+    /// `ingest`: frames given up after every retry.
+    pub frames_failed: u64,
+    /// `work`: the worker's counters.
+    pub worker: WorkerSnapshot,
+    /// `record`: window messages taken.
+    pub windows_received: u64,
+    /// `record`: event lines published for dashboards.
+    pub events_published: u64,
 }
 
 /// A gateway with its listeners bound, ready to [`Gateway::run`].
@@ -136,7 +169,7 @@ pub struct ServeReport {
 pub struct Gateway {
     config: GatewayConfig,
     config_digest: String,
-    ingest: TcpListener,
+    ingest: Option<TcpListener>,
     http: Option<TcpListener>,
     feed: EventFeed,
     metrics: Arc<GatewayMetrics>,
@@ -150,14 +183,20 @@ impl Gateway {
         config: GatewayConfig,
         config_digest: String,
     ) -> Result<Gateway, DaemonError> {
-        let ingest = TcpListener::bind(config.ingest.listen)
-            .await
-            .map_err(|source| DaemonError::Bind {
-                what: "nodes",
-                key: "ingest.listen",
-                addr: config.ingest.listen,
-                source,
-            })?;
+        let ingest = if !config.broker.enabled() || config.broker.has(Role::Ingest) {
+            Some(
+                TcpListener::bind(config.ingest.listen)
+                    .await
+                    .map_err(|source| DaemonError::Bind {
+                        what: "nodes",
+                        key: "ingest.listen",
+                        addr: config.ingest.listen,
+                        source,
+                    })?,
+            )
+        } else {
+            None
+        };
         let http = if config.http.enabled {
             Some(
                 TcpListener::bind(config.http.listen)
@@ -186,10 +225,19 @@ impl Gateway {
     }
 
     /// The address nodes connect to.
+    ///
+    /// # Panics
+    /// If the gateway takes no ingest role (see [`Gateway::try_ingest_addr`]).
     pub fn ingest_addr(&self) -> SocketAddr {
+        self.try_ingest_addr()
+            .expect("this gateway takes no ingest role")
+    }
+
+    /// The address nodes connect to, if this gateway takes TCP ingest.
+    pub fn try_ingest_addr(&self) -> Option<SocketAddr> {
         self.ingest
-            .local_addr()
-            .expect("a bound listener has an address")
+            .as_ref()
+            .map(|l| l.local_addr().expect("a bound listener has an address"))
     }
 
     /// The address of `/metrics`, `/health` and `/events`, if enabled.
@@ -226,8 +274,19 @@ impl Gateway {
             metrics,
             write_fault,
         } = self;
+        let roles = &config.broker;
+        let record_role = !roles.enabled() || roles.has(Role::Record);
+        let broker = if roles.enabled() {
+            let name = format!("csgate {}", config.site.name);
+            Some(Broker::connect(roles, name.trim()).await?)
+        } else {
+            None
+        };
         let ingest_stats = Arc::new(IngestStats::default());
         let pipe_stats = Arc::new(PipelineStats::default());
+        let publish_stats = Arc::new(PublishStats::default());
+        let worker_stats = Arc::new(WorkerStats::default());
+        let record_stats = Arc::new(RecordStats::default());
         let packet_queue = Arc::new(AtomicU64::new(0));
         let discarded = Arc::new(AtomicU64::new(0));
         let draining = Arc::new(AtomicBool::new(false));
@@ -253,7 +312,7 @@ impl Gateway {
         };
 
         // Pipeline thread; the analytics stage's feature events go to the feed.
-        let (pipe_tx, pipe_rx) = mpsc::channel::<Packet>(PIPELINE_FEED);
+        let (pipe_tx, pipe_rx) = mpsc::channel::<Arrival>(PIPELINE_FEED);
         let outputs = PipelineOutputs {
             events: vec![Box::new(FeedSink(feed.clone()))],
         };
@@ -266,26 +325,103 @@ impl Gateway {
         );
         let mut pipe_done = tokio::task::spawn_blocking(move || pipe.join());
 
-        // Ingest and forwarder.
+        // Sources: TCP ingest and MQTT into one channel, the forwarder behind it to the
+        // pipeline (standalone) or to the frame publisher (broker ingest).
         let ingest_config = config.ingest_config();
         let (ing_tx, ing_rx) = mpsc::channel::<Packet>(config.ingest.channel_capacity);
         let ing_tx_weak = ing_tx.downgrade();
         let drain_token = shutdown.drain.clone();
-        let mut ingest_task = tokio::spawn(tcp::run_advised(
-            ingest,
-            ingest_config,
-            ing_tx,
-            Arc::clone(&ingest_stats),
-            board,
-            async move { drain_token.cancelled().await },
-        ));
-        let forwarder = tokio::spawn(forward(
-            ing_rx,
-            pipe_tx,
-            shutdown.force.clone(),
-            Arc::clone(&packet_queue),
-            Arc::clone(&discarded),
-        ));
+        let mqtt_task = (config.mqtt.enabled && ingest.is_some()).then(|| {
+            let token = drain_token.clone();
+            tokio::spawn(crate::sources::mqtt::run(
+                config.mqtt.clone(),
+                ingest_config.limits.clone(),
+                config.key_ring(),
+                ing_tx.clone(),
+                Arc::clone(&ingest_stats),
+                async move { token.cancelled().await },
+            ))
+        });
+        let mut ingest_task = match ingest {
+            Some(listener) => {
+                let token = drain_token.clone();
+                tokio::spawn(tcp::run_advised(
+                    listener,
+                    ingest_config.clone(),
+                    ing_tx,
+                    Arc::clone(&ingest_stats),
+                    board,
+                    async move { token.cancelled().await },
+                ))
+            }
+            None => {
+                drop(ing_tx);
+                let token = drain_token.clone();
+                tokio::spawn(async move {
+                    token.cancelled().await;
+                    Ok(())
+                })
+            }
+        };
+        let mut publisher = None;
+        let forwarder = match &broker {
+            Some(b) if roles.has(Role::Ingest) => {
+                let (pub_tx, pub_rx) = mpsc::channel::<Packet>(PIPELINE_FEED);
+                publisher = Some(tokio::spawn(crate::broker::publish::publish_frames(
+                    b.clone(),
+                    pub_rx,
+                    Arc::clone(&publish_stats),
+                )));
+                tokio::spawn(forward(
+                    ing_rx,
+                    pub_tx,
+                    shutdown.force.clone(),
+                    Arc::clone(&packet_queue),
+                    Arc::clone(&discarded),
+                ))
+            }
+            _ => tokio::spawn(forward(
+                ing_rx,
+                pipe_tx.clone(),
+                shutdown.force.clone(),
+                Arc::clone(&packet_queue),
+                Arc::clone(&discarded),
+            )),
+        };
+
+        // Broker roles beside: the recorder's window source and event publisher, the worker.
+        let events_stop = CancellationToken::new();
+        let (mut windows_task, mut events_task, mut worker_task) = (None, None, None);
+        if let Some(b) = &broker {
+            if roles.has(Role::Record) {
+                windows_task = Some(tokio::spawn(crate::broker::record::consume_windows(
+                    b.clone(),
+                    ingest_config.limits.clone(),
+                    pipe_tx.clone(),
+                    Arc::clone(&record_stats),
+                    drain_token.clone(),
+                )));
+                if roles.publish_events {
+                    events_task = Some(tokio::spawn(crate::broker::record::publish_events(
+                        b.clone(),
+                        feed.clone(),
+                        Arc::clone(&record_stats),
+                        events_stop.clone(),
+                    )));
+                }
+            }
+            if roles.has(Role::Work) {
+                worker_task = Some(tokio::spawn(crate::broker::worker::run(
+                    b.clone(),
+                    config.pipeline.clone(),
+                    ingest_config.limits.clone(),
+                    Arc::clone(&worker_stats),
+                    drain_token.clone(),
+                )));
+            }
+        }
+        // Without the record role nothing feeds the pipeline; it waits, idle, for the drain.
+        let idle_pipe_tx = (!record_role).then_some(pipe_tx);
 
         // HTTP.
         let http_stop = CancellationToken::new();
@@ -325,6 +461,7 @@ impl Gateway {
         tracing::info!(
             site = %config.site.name,
             ingest = %config.ingest.listen,
+            roles = ?roles.roles,
             workers = config.pipeline.workers,
             records = %config.record.folder.display(),
             "gateway running"
@@ -333,10 +470,18 @@ impl Gateway {
         // Run until a signal, or until a stage stops on its own (an error: start a shutdown).
         let mut early_pipe = None;
         let mut early_ingest = None;
+        let worker_ends = async {
+            match worker_task.as_mut() {
+                Some(t) => t.await,
+                None => std::future::pending().await,
+            }
+        };
+        let mut early_worker = None;
         tokio::select! {
             _ = shutdown.drain.cancelled() => {}
             r = &mut pipe_done => early_pipe = Some(r),
             r = &mut ingest_task => early_ingest = Some(r),
+            r = worker_ends => early_worker = Some(r),
         }
         if !shutdown.drain.is_cancelled() {
             tracing::error!("a stage stopped on its own; shutting down");
@@ -375,7 +520,30 @@ impl Gateway {
             Some(r) => r,
             None => ingest_task.await,
         };
+        if let Some(t) = mqtt_task {
+            let _ = t.await;
+        }
         let _ = forwarder.await;
+        let mut broker_error = None;
+        if let Some(t) = publisher {
+            if let Ok(Err(e)) = t.await {
+                broker_error = Some(e);
+            }
+        }
+        if let Some(t) = windows_task {
+            if let Ok(Err(e)) = t.await {
+                broker_error = Some(e);
+            }
+        }
+        let worker_result = match (early_worker, worker_task) {
+            (Some(r), _) => Some(r),
+            (None, Some(t)) => Some(t.await),
+            (None, None) => None,
+        };
+        if let Some(Ok(Err(e))) = worker_result {
+            broker_error = Some(e);
+        }
+        drop(idle_pipe_tx);
         let pipe_result = match early_pipe {
             Some(r) => r,
             None => {
@@ -393,6 +561,11 @@ impl Gateway {
         };
         let tap_result = tokio::task::spawn_blocking(move || tap.join()).await;
         let sink_result = tokio::task::spawn_blocking(move || sink_handle.join()).await;
+        // The last event lines (the shutdown notice, the tails' features) go out too.
+        events_stop.cancel();
+        if let Some(t) = events_task {
+            let _ = t.await;
+        }
         deadline.abort();
         force_log.abort();
         http_stop.cancel();
@@ -415,6 +588,9 @@ impl Gateway {
             Ok(r) => r?,
             Err(_) => return Err(DaemonError::Panicked("ingest")),
         }
+        if let Some(e) = broker_error {
+            return Err(e.into());
+        }
         let report = ServeReport {
             ingest: ingest_stats.snapshot(),
             pipeline: summary,
@@ -426,6 +602,14 @@ impl Gateway {
             record_dropped_rows: sink_stats.dropped_rows,
             forced: shutdown.force.is_cancelled(),
             drain_s: drain_started.elapsed().as_secs_f64(),
+            broker: broker.map(|_| BrokerReport {
+                frames_published: publish_stats.published.load(Ordering::Relaxed),
+                frames_duplicate: publish_stats.duplicates.load(Ordering::Relaxed),
+                frames_failed: publish_stats.failed.load(Ordering::Relaxed),
+                worker: worker_stats.snapshot(),
+                windows_received: record_stats.windows.load(Ordering::Relaxed),
+                events_published: record_stats.events.load(Ordering::Relaxed),
+            }),
         };
         tracing::info!(
             windows = report.pipeline.windows,
@@ -441,11 +625,12 @@ impl Gateway {
     }
 }
 
-/// Passes packets from the sockets' channel to the pipeline's, keeping the lag gauge; on
-/// `force` it discards what is still waiting. Ends when the sockets' side closes.
-async fn forward(
+/// Passes packets from the sockets' channel to the pipeline's (or the frame publisher's),
+/// keeping the lag gauge; on `force` it discards what is still waiting. Ends when the
+/// sockets' side closes.
+async fn forward<T: From<Packet>>(
     mut rx: mpsc::Receiver<Packet>,
-    tx: mpsc::Sender<Packet>,
+    tx: mpsc::Sender<T>,
     force: CancellationToken,
     depth: Arc<AtomicU64>,
     discarded: Arc<AtomicU64>,
@@ -467,7 +652,7 @@ async fn forward(
                 discarded.fetch_add(1, Ordering::Relaxed);
                 break;
             }
-            sent = tx.send(packet) => if sent.is_err() {
+            sent = tx.send(packet.into()) => if sent.is_err() {
                 // The pipeline stopped; the caller reports why.
                 break;
             },

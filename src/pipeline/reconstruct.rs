@@ -176,6 +176,35 @@ pub struct ReconstructedWindow {
     pub warm: WarmState,
 }
 
+/// A window reconstructed by a broker worker, as a recorder receives it
+/// (`pipeline::run::Arrival::Solved`; docs/scale-out.md): the outcome of its
+/// [`ReconstructedWindow`] without the dispatcher's bookkeeping.
+#[derive(Debug, Clone)]
+pub struct SolvedWindow {
+    /// The window as received from the node.
+    pub packet: Packet,
+    /// The reconstructed window on the full grid, or why it could not be reconstructed.
+    pub outcome: Result<(Vec<f64>, SolveReport), String>,
+    /// Wall time of the job in microseconds (the hold-out solve included).
+    pub solve_time_us: f64,
+    /// Wall time of the hold-out solve alone, microseconds.
+    pub trust_time_us: f64,
+    /// The trust figures.
+    pub trust: Option<WindowTrust>,
+}
+
+impl From<ReconstructedWindow> for SolvedWindow {
+    fn from(r: ReconstructedWindow) -> Self {
+        SolvedWindow {
+            packet: r.packet,
+            outcome: r.outcome,
+            solve_time_us: r.solve_time_us,
+            trust_time_us: r.trust_time_us,
+            trust: r.trust,
+        }
+    }
+}
+
 /// Solvers of one precision, one per (basis, length), planned on first use.
 #[derive(Debug)]
 struct SolverSet<T: Real> {

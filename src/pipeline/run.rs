@@ -17,13 +17,16 @@
 //! stitcher (the tail of each capture) and returns; the caller then shuts the writer down.
 //!
 //! The live gateway and the offline replay both run exactly this code; only the source of the
-//! packet channel differs.
+//! packet channel differs. A broker recorder (docs/scale-out.md) runs it too, fed with windows
+//! that workers elsewhere have already reconstructed ([`Arrival::Solved`]): those skip the
+//! worker pool and go straight to the stitcher, in the same order and with the same reorder,
+//! gap and capture rules as received packets.
 
 use super::analytics::{self, AnalyticsConfig, AnalyticsMsg, AnalyticsStats};
 use super::events::{EventError, EventSink};
 use super::pool::WorkerPool;
 use super::reconstruct::{
-    Precision, ReconstructJob, ReconstructedWindow, WarmStart, WarmState, WorkerState,
+    Precision, ReconstructJob, ReconstructedWindow, SolvedWindow, WarmStart, WarmState, WorkerState,
 };
 use super::trust::TrustConfig;
 use crate::basis::{BasisKind, BasisPlanner};
@@ -32,7 +35,7 @@ use crate::solver::{SolveSettings, StopReason};
 use crate::store::layout::{stop_reason, trust, WindowRow};
 use crate::store::{RecordMsg, StreamKey, StreamMeta};
 use crate::stream::overlap_add::{GapReason, StitchConfig, StitchItem, Stitcher};
-use crate::stream::reorder::{ReorderConfig, ReorderEvent, Reorderer};
+use crate::stream::reorder::{ReorderConfig, ReorderEvent, Reorderer, Sequenced};
 use serde::{Deserialize, Serialize};
 use std::collections::{HashMap, VecDeque};
 use std::sync::atomic::{AtomicU64, AtomicUsize, Ordering};
@@ -138,6 +141,11 @@ mod opt_basis_kind_str {
 }
 
 impl PipelineConfig {
+    /// The first `[[pipeline.stream]]` override that matches `stream`, if any.
+    pub fn override_for(&self, stream: StreamId) -> Option<&StreamOverride> {
+        self.streams.iter().find(|o| o.matches(stream))
+    }
+
     /// Checks the settings that serde cannot; the message names the field.
     pub fn check(&self) -> Result<(), String> {
         self.trust.check()?;
@@ -389,12 +397,56 @@ impl std::fmt::Debug for PipelineOutputs {
     }
 }
 
+/// What the dispatcher takes in: a received window to reconstruct, or one a broker worker has
+/// already reconstructed.
+#[derive(Debug)]
+pub enum Arrival {
+    /// A window as received from a node.
+    Packet(Packet),
+    /// A window reconstructed elsewhere, with its report.
+    Solved(Box<SolvedWindow>),
+}
+
+impl Arrival {
+    /// The window as received.
+    pub fn packet(&self) -> &Packet {
+        match self {
+            Arrival::Packet(p) => p,
+            Arrival::Solved(w) => &w.packet,
+        }
+    }
+}
+
+impl From<Packet> for Arrival {
+    fn from(p: Packet) -> Self {
+        Arrival::Packet(p)
+    }
+}
+
+impl From<SolvedWindow> for Arrival {
+    fn from(w: SolvedWindow) -> Self {
+        Arrival::Solved(Box::new(w))
+    }
+}
+
+impl Sequenced for Arrival {
+    fn stream(&self) -> StreamId {
+        self.packet().header.stream
+    }
+    fn capture_id(&self) -> u32 {
+        self.packet().header.capture_id
+    }
+    fn seq(&self) -> u64 {
+        self.packet().header.seq
+    }
+}
+
 /// What waits in a stream's queue, in stream order.
 #[derive(Debug)]
 enum Pending {
     Window {
         start: u64,
-        packet: Packet,
+        arrival: Arrival,
     },
     Missing {
         start: u64,
@@ -454,9 +506,9 @@ pub fn run(
 }
 
 /// [`run`] with event sinks for the analytics stage.
-pub fn run_with(
+pub fn run_with<I: Into<Arrival>>(
     config: &PipelineConfig,
-    mut packets: mpsc::Receiver<Packet>,
+    mut packets: mpsc::Receiver<I>,
     record: SyncSender<RecordMsg>,
     stats: Arc<PipelineStats>,
     outputs: PipelineOutputs,
@@ -511,7 +563,7 @@ pub fn run_with(
         let accepting = sources_open && d.queued < config.max_queued_windows;
         enum Ev {
             Done(Box<ReconstructedWindow>),
-            Packet(Packet),
+            Packet(Arrival),
             SourcesClosed,
             Idle,
         }
@@ -520,7 +572,7 @@ pub fn run_with(
                 biased;
                 Some(r) = done_rx.recv(), if d.in_flight > 0 => Ev::Done(Box::new(r)),
                 p = packets.recv(), if accepting => match p {
-                    Some(p) => Ev::Packet(p),
+                    Some(p) => Ev::Packet(p.into()),
                     None => Ev::SourcesClosed,
                 },
                 else => Ev::Idle,
@@ -530,12 +582,12 @@ pub fn run_with(
             Ev::Done(r) => d.on_done(*r)?,
             Ev::Packet(p) => {
                 stats.packets.fetch_add(1, Ordering::Relaxed);
-                let events: Vec<ReorderEvent> = d.reorder.push(p).collect();
+                let events: Vec<ReorderEvent<Arrival>> = d.reorder.push(p).collect();
                 d.on_events(events)?;
             }
             Ev::SourcesClosed => {
                 sources_open = false;
-                let events: Vec<ReorderEvent> = d.reorder.flush_all().collect();
+                let events: Vec<ReorderEvent<Arrival>> = d.reorder.flush_all().collect();
                 d.on_events(events)?;
             }
             Ev::Idle => {
@@ -563,9 +615,9 @@ pub fn run_with(
 }
 
 /// Starts [`run`] on a thread of its own.
-pub fn spawn(
+pub fn spawn<I: Into<Arrival> + Send + 'static>(
     config: PipelineConfig,
-    packets: mpsc::Receiver<Packet>,
+    packets: mpsc::Receiver<I>,
     record: SyncSender<RecordMsg>,
     stats: Arc<PipelineStats>,
 ) -> std::thread::JoinHandle<Result<PipelineSummary, PipelineError>> {
@@ -573,9 +625,9 @@ pub fn spawn(
 }
 
 /// Starts [`run_with`] on a thread of its own.
-pub fn spawn_with(
+pub fn spawn_with<I: Into<Arrival> + Send + 'static>(
     config: PipelineConfig,
-    packets: mpsc::Receiver<Packet>,
+    packets: mpsc::Receiver<I>,
     record: SyncSender<RecordMsg>,
     stats: Arc<PipelineStats>,
     outputs: PipelineOutputs,
@@ -591,7 +643,7 @@ struct Dispatcher<'a> {
     settings: Arc<SolveSettings>,
     trust: Arc<TrustConfig>,
     analytics: Option<SyncSender<AnalyticsMsg>>,
-    reorder: Reorderer,
+    reorder: Reorderer<Arrival>,
     slots: Vec<StreamSlot>,
     by_stream: HashMap<StreamId, usize>,
     record: SyncSender<RecordMsg>,
@@ -657,7 +709,7 @@ impl Dispatcher<'_> {
         ack_rx.recv().map_err(|_| PipelineError::AnalyticsStopped)
     }
 
-    fn on_events(&mut self, events: Vec<ReorderEvent>) -> Result<(), PipelineError> {
+    fn on_events(&mut self, events: Vec<ReorderEvent<Arrival>>) -> Result<(), PipelineError> {
         for ev in events {
             match ev {
                 ReorderEvent::CaptureStart {
@@ -670,7 +722,8 @@ impl Dispatcher<'_> {
                         awaiting_first: true,
                     });
                 }
-                ReorderEvent::Window(packet) => {
+                ReorderEvent::Window(arrival) => {
+                    let packet = arrival.packet();
                     let s = self.slot_of(packet.stream());
                     let Some(mut grid) = self.slots[s].capture else {
                         continue;
@@ -701,7 +754,7 @@ impl Dispatcher<'_> {
                     };
                     self.slots[s]
                         .queue
-                        .push_back(Pending::Window { start, packet });
+                        .push_back(Pending::Window { start, arrival });
                     self.queued += 1;
                 }
                 ReorderEvent::Gap {
@@ -828,11 +881,26 @@ impl Dispatcher<'_> {
                 break;
             };
             match head {
-                Pending::Window { start, packet } => {
+                Pending::Window { start, arrival } => {
                     self.queued -= 1;
                     if self.slots[s].stitcher.is_none() {
                         continue;
                     }
+                    let packet = match arrival {
+                        Arrival::Packet(p) => p,
+                        Arrival::Solved(w) => {
+                            let w = *w;
+                            self.complete(
+                                s,
+                                start,
+                                w.packet,
+                                w.outcome,
+                                w.trust,
+                                (w.solve_time_us, w.trust_time_us),
+                            )?;
+                            continue;
+                        }
+                    };
                     let job = ReconstructJob {
                         stream_slot: s,
                         start,
@@ -885,19 +953,45 @@ impl Dispatcher<'_> {
         self.in_flight -= 1;
         self.slots[s].in_flight = false;
         self.slots[s].warm = r.warm;
+        self.complete(
+            s,
+            r.start,
+            r.packet,
+            r.outcome,
+            r.trust,
+            (r.solve_time_us, r.trust_time_us),
+        )?;
+        self.advance(s)?;
+        self.stats.queued.store(self.queued, Ordering::Relaxed);
+        Ok(())
+    }
+
+    /// Records a reconstructed window (or its failure) and stitches it: the common end of a
+    /// window solved here and one solved by a broker worker. `times` is (job, hold-out) in
+    /// microseconds.
+    fn complete(
+        &mut self,
+        s: usize,
+        start: u64,
+        packet: Packet,
+        outcome: Result<(Vec<f64>, crate::solver::SolveReport), String>,
+        trust: Option<super::trust::WindowTrust>,
+        times: (f64, f64),
+    ) -> Result<(), PipelineError> {
+        let (solve_time_us, trust_time_us) = times;
         let key = self.slots[s].key;
-        let h = r.packet.header;
-        match r.outcome {
+        let h = packet.header;
+        match outcome {
             Ok((signal, report)) => {
                 self.stats
                     .note_report(report.relative_residual, report.iterations);
                 self.stats
                     .job_ns
-                    .fetch_add((r.solve_time_us * 1e3) as u64, Ordering::Relaxed);
+                    .fetch_add((solve_time_us * 1e3) as u64, Ordering::Relaxed);
                 self.stats
                     .trust_ns
-                    .fetch_add((r.trust_time_us * 1e3) as u64, Ordering::Relaxed);
-                let (cv_error, trust_code) = match &r.trust {
+                    .fetch_add((trust_time_us * 1e3) as u64, Ordering::Relaxed);
+                let (cv_error, trust_code) = match &trust {
                     Some(t) => {
                         self.stats.assessed_windows.fetch_add(1, Ordering::Relaxed);
                         self.stats
@@ -914,48 +1008,48 @@ impl Dispatcher<'_> {
                 };
                 self.to_analytics(AnalyticsMsg::Window {
                     slot: s,
-                    start: r.start,
+                    start,
                     len: u64::from(h.window_len),
-                    trust: r.trust.as_ref().map(|t| (t.cv_error, t.low())),
+                    trust: trust.as_ref().map(|t| (t.cv_error, t.low())),
                 })?;
                 let row = WindowRow {
                     seq: h.seq,
                     capture_id: h.capture_id,
-                    start_sample: r.start,
+                    start_sample: start,
                     t0_unix_ns: h.t0_us.saturating_mul(1000),
-                    m: r.packet.indices.len() as u32,
+                    m: packet.indices.len() as u32,
                     n: h.window_len,
                     lambda: report.lambda,
                     iterations: report.iterations as u32,
                     duality_gap: report.relative_gap,
                     residual: report.relative_residual,
                     support: report.support as u32,
-                    stop_reason: stop_code(report.stop, r.packet.indices.len(), h.window_len),
-                    solve_time_us: r.solve_time_us,
+                    stop_reason: stop_code(report.stop, packet.indices.len(), h.window_len),
+                    solve_time_us,
                     cv_error,
                     trust: trust_code,
                 };
                 self.send(RecordMsg::Window {
                     stream: key,
                     row,
-                    effective_support: r.trust.as_ref().map(|t| t.effective_support as u32),
+                    effective_support: trust.as_ref().map(|t| t.effective_support as u32),
                 })?;
                 let items = match self.slots[s].stitcher.as_mut() {
-                    Some(st) => st.push_window(r.start, &signal),
+                    Some(st) => st.push_window(start, &signal),
                     None => Ok(Vec::new()),
                 };
                 match items {
                     Ok(items) => self.emit(s, items)?,
                     Err(e) => {
-                        tracing::warn!(stream = %r.packet.stream(), seq = h.seq, error = %e, "window not stitched")
+                        tracing::warn!(stream = %packet.stream(), seq = h.seq, error = %e, "window not stitched")
                     }
                 }
             }
             Err(e) => {
                 self.stats.failed_windows.fetch_add(1, Ordering::Relaxed);
-                tracing::warn!(stream = %r.packet.stream(), seq = h.seq, error = %e, "window not reconstructed; recorded as a gap");
+                tracing::warn!(stream = %packet.stream(), seq = h.seq, error = %e, "window not reconstructed; recorded as a gap");
                 let items = match self.slots[s].stitcher.as_mut() {
-                    Some(st) => st.push_missing(r.start, GapReason::WindowRejected),
+                    Some(st) => st.push_missing(start, GapReason::WindowRejected),
                     None => Ok(Vec::new()),
                 };
                 if let Ok(items) = items {
@@ -963,8 +1057,6 @@ impl Dispatcher<'_> {
                 }
             }
         }
-        self.advance(s)?;
-        self.stats.queued.store(self.queued, Ordering::Relaxed);
         Ok(())
     }
 

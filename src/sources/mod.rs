@@ -1,4 +1,5 @@
-//! Sources of packets: the TCP ingest that nodes connect to, replay of packet-log files, and a
+//! Sources of packets: the TCP ingest that nodes connect to, the MQTT source for nodes that
+//! publish, replay of packet-log files, and a
 //! fault-injecting sender that plays the node side for tests and the simulator.
 //!
 //! Every source hands validated [`Packet`](crate::packet::Packet)s to the rest of the gateway
@@ -6,6 +7,7 @@
 
 pub mod config;
 pub mod inject;
+pub mod mqtt;
 pub mod packet_log;
 pub mod tcp;
 

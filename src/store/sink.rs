@@ -78,7 +78,7 @@ impl WriteFault {
             return Err(StoreError::Io {
                 path: path.to_path_buf(),
                 source: std::io::Error::new(
-                    std::io::ErrorKind::StorageFull,
+                    std::io::Error::from_raw_os_error(28).kind(), // ENOSPC; `ErrorKind::StorageFull` needs Rust 1.83 (MSRV 1.80)
                     "no space left on device (injected fault)",
                 ),
             });

@@ -20,6 +20,30 @@
 
 use crate::packet::{Packet, StreamId};
 use serde::{Deserialize, Serialize};
+
+/// What the buffer orders: anything that names its stream, capture and sequence number. The
+/// gateway orders received [`Packet`]s; a broker recorder orders windows already
+/// reconstructed by a worker (`pipeline::run::Arrival`).
+pub trait Sequenced {
+    /// The stream.
+    fn stream(&self) -> StreamId;
+    /// The capture.
+    fn capture_id(&self) -> u32;
+    /// The window's sequence number within its capture.
+    fn seq(&self) -> u64;
+}
+
+impl Sequenced for Packet {
+    fn stream(&self) -> StreamId {
+        self.header.stream
+    }
+    fn capture_id(&self) -> u32 {
+        self.header.capture_id
+    }
+    fn seq(&self) -> u64 {
+        self.header.seq
+    }
+}
 use std::collections::{BTreeMap, HashMap, VecDeque};
 
 /// Reorder settings.
@@ -44,7 +68,7 @@ impl Default for ReorderConfig {
 
 /// What the buffer emits, in order.
 #[derive(Debug, Clone, PartialEq)]
-pub enum ReorderEvent {
+pub enum ReorderEvent<T = Packet> {
     /// A capture begins; its windows follow.
     CaptureStart {
         /// Stream.
@@ -55,7 +79,7 @@ pub enum ReorderEvent {
         first_seq: u64,
     },
     /// The next window in order.
-    Window(Packet),
+    Window(T),
     /// Windows `from_seq .. from_seq + count` are lost.
     Gap {
         /// Stream.
@@ -96,10 +120,10 @@ pub struct ReorderStats {
 }
 
 #[derive(Debug)]
-struct Capture {
+struct Capture<T> {
     id: u32,
     next_seq: u64,
-    pending: BTreeMap<u64, Packet>,
+    pending: BTreeMap<u64, T>,
 }
 
 /// How many recent gaps and ended captures are remembered to tell late windows from
@@ -108,18 +132,18 @@ const MEMORY: usize = 64;
 
 /// The jitter buffer of one stream.
 #[derive(Debug)]
-pub struct ReorderBuffer {
+pub struct ReorderBuffer<T = Packet> {
     stream: StreamId,
     horizon: u64,
-    capture: Option<Capture>,
+    capture: Option<Capture<T>>,
     recent_gaps: VecDeque<(u32, u64, u64)>,
     ended: VecDeque<u32>,
     stats: ReorderStats,
 }
 
-impl ReorderBuffer {
+impl<T: Sequenced> ReorderBuffer<T> {
     /// An empty buffer for `stream`.
-    pub fn new(stream: StreamId, config: &ReorderConfig) -> ReorderBuffer {
+    pub fn new(stream: StreamId, config: &ReorderConfig) -> ReorderBuffer<T> {
         ReorderBuffer {
             stream,
             horizon: config.horizon_windows.max(1),
@@ -149,14 +173,14 @@ impl ReorderBuffer {
     ///
     /// # Panics
     /// If the packet belongs to another stream (a routing bug; use [`Reorderer`]).
-    pub fn push(&mut self, packet: Packet) -> impl Iterator<Item = ReorderEvent> {
+    pub fn push(&mut self, packet: T) -> impl Iterator<Item = ReorderEvent<T>> {
         assert_eq!(
             packet.stream(),
             self.stream,
             "packet routed to the wrong stream"
         );
         let mut out = Vec::new();
-        let (capture_id, seq) = (packet.header.capture_id, packet.header.seq);
+        let (capture_id, seq) = (packet.capture_id(), packet.seq());
         if self.capture.as_ref().is_some_and(|c| c.id != capture_id) {
             if self.ended.contains(&capture_id) {
                 self.late(capture_id, seq, "capture already ended");
@@ -208,7 +232,7 @@ impl ReorderBuffer {
 
     /// Emits everything held (with gaps between) and ends the current capture. Call at
     /// shutdown or when the stream's source is gone.
-    pub fn flush(&mut self) -> impl Iterator<Item = ReorderEvent> {
+    pub fn flush(&mut self) -> impl Iterator<Item = ReorderEvent<T>> {
         let mut out = Vec::new();
         if self.capture.is_some() {
             self.end_capture(&mut out);
@@ -221,7 +245,7 @@ impl ReorderBuffer {
         tracing::warn!(stream = %self.stream, capture_id, seq, why, "late window dropped");
     }
 
-    fn end_capture(&mut self, out: &mut Vec<ReorderEvent>) {
+    fn end_capture(&mut self, out: &mut Vec<ReorderEvent<T>>) {
         self.drain(out, true);
         let cap = self.capture.take().expect("a capture to end");
         out.push(ReorderEvent::CaptureEnd {
@@ -236,7 +260,7 @@ impl ReorderBuffer {
     }
 
     /// Emits in-order windows; declares gaps that the horizon (or `all`) has passed.
-    fn drain(&mut self, out: &mut Vec<ReorderEvent>, all: bool) {
+    fn drain(&mut self, out: &mut Vec<ReorderEvent<T>>, all: bool) {
         let Some(cap) = self.capture.as_mut() else {
             return;
         };
@@ -275,15 +299,24 @@ impl ReorderBuffer {
 }
 
 /// Jitter buffers for every stream, created on first sight.
-#[derive(Debug, Default)]
-pub struct Reorderer {
+#[derive(Debug)]
+pub struct Reorderer<T = Packet> {
     config: ReorderConfig,
-    streams: HashMap<StreamId, ReorderBuffer>,
+    streams: HashMap<StreamId, ReorderBuffer<T>>,
 }
 
-impl Reorderer {
+impl<T> Default for Reorderer<T> {
+    fn default() -> Self {
+        Reorderer {
+            config: ReorderConfig::default(),
+            streams: HashMap::new(),
+        }
+    }
+}
+
+impl<T: Sequenced> Reorderer<T> {
     /// No streams yet.
-    pub fn new(config: ReorderConfig) -> Reorderer {
+    pub fn new(config: ReorderConfig) -> Reorderer<T> {
         Reorderer {
             config,
             streams: HashMap::new(),
@@ -291,7 +324,7 @@ impl Reorderer {
     }
 
     /// Routes a window to its stream's buffer.
-    pub fn push(&mut self, packet: Packet) -> impl Iterator<Item = ReorderEvent> {
+    pub fn push(&mut self, packet: T) -> impl Iterator<Item = ReorderEvent<T>> {
         let stream = packet.stream();
         self.streams
             .entry(stream)
@@ -300,7 +333,7 @@ impl Reorderer {
     }
 
     /// Flushes every stream (in stream order, so the output is deterministic).
-    pub fn flush_all(&mut self) -> impl Iterator<Item = ReorderEvent> {
+    pub fn flush_all(&mut self) -> impl Iterator<Item = ReorderEvent<T>> {
         let mut ids: Vec<StreamId> = self.streams.keys().copied().collect();
         ids.sort();
         let mut out = Vec::new();
@@ -312,7 +345,7 @@ impl Reorderer {
 
     /// Counters of one stream.
     pub fn stats(&self, stream: StreamId) -> Option<ReorderStats> {
-        self.streams.get(&stream).map(ReorderBuffer::stats)
+        self.streams.get(&stream).map(ReorderBuffer::<T>::stats)
     }
 
     /// Every stream seen.
