@@ -28,8 +28,11 @@
 //! ```json
 //! { "version": 1, "n": 4096, "m": 1024, "count": 24, "lambdas": [0.01, ...],
 //!   "gap_tol": 1e-4, "max_iter": 3000, "warm_start": true, "debias": false, "restart": true,
-//!   "repeats": 3, "indices_file": "idx.u32", "values_file": "y.f64", "output": "csgate" }
+//!   "repeats": 3, "indices_file": "idx.u32", "values_file": "y.f64", "output": "csgate",
+//!   "precision": "f64" }
 //! ```
+//! `precision` (optional, `"f64"` by default, or `"f32"`): the solver's working precision
+//! (the gateway's default is f32); inputs and outputs stay `f64` on disk.
 //! `indices_file`: `count * m` little-endian `u32`, window after window, each window's `m`
 //! indices strictly increasing in `[0, n)`. `values_file`: `count * m` little-endian `f64`, the
 //! sampled values in the same order. csgate writes `<output>.json` ([`WindowSetResult`]) and
@@ -38,7 +41,9 @@
 
 use crate::basis::{BasisKind, BasisPlanner, BasisScratch, SharedBasis};
 use crate::packet::{KeyRing, Limits, Packet};
-use crate::pipeline::reconstruct::{Method, ReconstructJob, WarmStart, WarmState, WorkerState};
+use crate::pipeline::reconstruct::{
+    Method, Precision, ReconstructJob, WarmStart, WarmState, WorkerState,
+};
 use crate::pipeline::replay::{replay, ReplayError, ReplayOptions, ReplayReport};
 use crate::pipeline::run::{PipelineConfig, PipelineSummary};
 use crate::sim::run::{write_log, FilePace};
@@ -378,10 +383,10 @@ fn generate_log(
     Ok((summary.windows, summary.bytes))
 }
 
-fn replay_options(log: &Path, out: &Path, workers: usize) -> ReplayOptions {
+fn replay_options(log: &Path, out: &Path, workers: usize, base: &PipelineConfig) -> ReplayOptions {
     let pipeline = PipelineConfig {
         workers,
-        ..PipelineConfig::default()
+        ..base.clone()
     };
     ReplayOptions {
         logs: vec![log.to_path_buf()],
@@ -410,6 +415,9 @@ pub struct CapacityOptions {
     pub floor_iterations: usize,
     /// Where to make the scratch folder (default: the system's temporary folder).
     pub scratch_in: Option<PathBuf>,
+    /// The pipeline settings measured (its `workers` is replaced by `workers`); the
+    /// iteration floor is measured in its `precision`.
+    pub pipeline: PipelineConfig,
 }
 
 impl Default for CapacityOptions {
@@ -421,6 +429,7 @@ impl Default for CapacityOptions {
             solve_windows: 40,
             floor_iterations: 200,
             scratch_in: None,
+            pipeline: PipelineConfig::default(),
         }
     }
 }
@@ -438,6 +447,10 @@ pub struct CapacityReport {
     pub sample_rate_hz: f64,
     /// Solver workers of the replay.
     pub workers: usize,
+    /// Working precision of the solver.
+    pub precision: Precision,
+    /// Whether every window also had its trust figures (the hold-out solve).
+    pub trust: bool,
     /// Channels in the measured log.
     pub channels_tested: usize,
     /// Seconds of signal per channel.
@@ -493,17 +506,19 @@ pub fn measure_capacity(
         return Err(BenchError::Option("workers: need at least one".into()));
     }
     let machine = machine_info();
-    let floor = measure_iteration_floor(w, opts.floor_iterations, progress)?;
-    let cost = measure_window_cost(w, opts.solve_windows, progress)?;
+    let floor =
+        measure_iteration_floor(w, opts.floor_iterations, opts.pipeline.precision, progress)?;
+    let cost = measure_window_cost(w, opts.solve_windows, &opts.pipeline, progress)?;
 
     let dir = scratch_dir(opts.scratch_in.as_deref())?;
     let log = dir.path().join("bench.cslog");
     let out = dir.path().join("bench.h5");
     generate_log(w, opts.seconds, &log, progress)?;
     let peak_rss_reset = reset_peak_rss();
-    let report = replay(&replay_options(&log, &out, opts.workers), |d, t| {
-        progress(Phase::Replay, d, t)
-    })?;
+    let report = replay(
+        &replay_options(&log, &out, opts.workers, &opts.pipeline),
+        |d, t| progress(Phase::Replay, d, t),
+    )?;
     let peak = peak_rss_mib();
     drop(dir);
 
@@ -515,6 +530,8 @@ pub fn measure_capacity(
         m_over_n: w.m_over_n,
         sample_rate_hz: SAMPLE_RATE_HZ,
         workers: opts.workers,
+        precision: opts.pipeline.precision,
+        trust: opts.pipeline.trust.enabled,
         channels_tested: w.channels,
         seconds: opts.seconds,
         windows: report.pipeline.windows,
@@ -546,12 +563,13 @@ pub struct WindowCost {
     pub median_iterations: f64,
 }
 
-/// Times the pipeline's reconstruct job ([`WorkerState::run`], pipeline default settings,
+/// Times the pipeline's reconstruct job ([`WorkerState::run`], the settings of `config`,
 /// warm start from the previous window) over `windows + 1` windows of the workload's first
 /// channel on this thread; the first window (cold start) is not counted.
 pub fn measure_window_cost(
     w: &Workload,
     windows: usize,
+    config: &PipelineConfig,
     progress: &mut dyn FnMut(Phase, u64, u64),
 ) -> Result<WindowCost, BenchError> {
     let one = Workload {
@@ -569,7 +587,6 @@ pub fn measure_window_cost(
             break;
         }
     }
-    let config = PipelineConfig::default();
     let settings = Arc::new(config.solver.clone());
     let mut worker = WorkerState::new(Arc::new(BasisPlanner::new()));
     let mut warm = WarmState::default();
@@ -622,12 +639,24 @@ pub struct IterationFloor {
 /// Repeats of [`measure_iteration_floor`]; the median is reported.
 const FLOOR_REPEATS: usize = 9;
 
-/// Measures one FISTA iteration (f64, the pipeline's precision) on a window of the workload
+/// Measures one FISTA iteration (in `precision`, the pipeline's) on a window of the workload
 /// at `lambda = 0.01 lambda_max` (the pipeline's rule), against one synthesis plus one analysis
 /// of the planned DCT of the same `n`. The two are timed alternately, `iterations` each per
 /// repeat, and the medians over the repeats are compared, so that a burst of other work on the
 /// machine hits both alike.
 pub fn measure_iteration_floor(
+    w: &Workload,
+    iterations: usize,
+    precision: Precision,
+    progress: &mut dyn FnMut(Phase, u64, u64),
+) -> Result<IterationFloor, BenchError> {
+    match precision {
+        Precision::F64 => iteration_floor_in::<f64>(w, iterations, progress),
+        Precision::F32 => iteration_floor_in::<f32>(w, iterations, progress),
+    }
+}
+
+fn iteration_floor_in<T: crate::real::Real>(
     w: &Workload,
     iterations: usize,
     progress: &mut dyn FnMut(Phase, u64, u64),
@@ -644,15 +673,15 @@ pub fn measure_iteration_floor(
         .next_window()?
         .and_then(|win| win.packets.into_iter().next())
         .ok_or_else(|| BenchError::Option("the workload produced no window".into()))?;
-    let basis: SharedBasis<f64> = BasisPlanner::new()
+    let basis: SharedBasis<T> = BasisPlanner::new()
         .plan(BasisKind::Dct, w.n as usize)
         .map_err(|e| BenchError::Option(e.to_string()))?;
-    let y: Vec<f64> = packet.values.iter().map(|&v| f64::from(v)).collect();
+    let y: Vec<T> = packet.values.iter().map(|&v| T::of(f64::from(v))).collect();
     let mut op = SampledBasis::new(Arc::clone(&basis), &packet.indices)
         .map_err(|e| BenchError::Option(e.to_string()))?;
-    let mut corr = vec![0.0; w.n as usize];
+    let mut corr = vec![T::zero(); w.n as usize];
     op.adjoint(&y, &mut corr);
-    let lambda = 0.01 * corr.iter().fold(0.0_f64, |a, c| a.max(c.abs()));
+    let lambda = T::of(0.01) * corr.iter().fold(T::zero(), |a, c| a.max(c.abs()));
     let options = FistaOptions {
         // Never met: every repeat runs exactly `iterations` iterations.
         gap_tol: 1e-300,
@@ -662,8 +691,8 @@ pub fn measure_iteration_floor(
         subspace: false,
     };
     let mut work = FistaWork::new();
-    let mut s = vec![0.0; w.n as usize];
-    let mut buf: Vec<f64> = corr.clone();
+    let mut s = vec![T::zero(); w.n as usize];
+    let mut buf: Vec<T> = corr.clone();
     let mut scratch = BasisScratch::new();
     // Warm-up: grows every buffer and scratch, faults the pages in.
     fista(&mut op, &y, lambda, &options, &mut s, &mut work);
@@ -673,7 +702,7 @@ pub fn measure_iteration_floor(
     let mut per_iter = Vec::with_capacity(FLOOR_REPEATS);
     let mut per_floor = Vec::with_capacity(FLOOR_REPEATS);
     for r in 0..FLOOR_REPEATS {
-        s.fill(0.0);
+        s.fill(T::zero());
         let t = Instant::now();
         let out = fista(&mut op, &y, lambda, &options, &mut s, &mut work);
         per_iter.push(t.elapsed().as_secs_f64() * 1e6 / out.iterations.max(1) as f64);
@@ -809,35 +838,38 @@ pub fn long_replay(
     let replay_started = Instant::now();
     let mut samples: Vec<RssSample> = Vec::new();
     let mut next_sample = Duration::ZERO;
-    let report = replay(&replay_options(&log, &out, opts.workers), |done, total| {
-        progress(Phase::Replay, done, total);
-        let now = replay_started.elapsed();
-        if now >= next_sample {
-            next_sample = now + opts.rss_every;
-            if let Some(rss) = rss_mib() {
-                let sample = RssSample {
-                    wall_s: now.as_secs_f64(),
-                    windows: done,
-                    log_minutes: if total > 0 {
-                        opts.minutes * done as f64 / total as f64
-                    } else {
-                        0.0
-                    },
-                    rss_mib: rss,
-                };
-                // A trace of the run as it goes (CSGATE_LOG=debug), so that a run stopped
-                // before its end still shows how memory behaved.
-                tracing::debug!(
-                    wall_s = sample.wall_s,
-                    windows = done,
-                    log_minutes = sample.log_minutes,
-                    rss_mib = rss,
-                    "long replay memory sample"
-                );
-                samples.push(sample);
+    let report = replay(
+        &replay_options(&log, &out, opts.workers, &PipelineConfig::default()),
+        |done, total| {
+            progress(Phase::Replay, done, total);
+            let now = replay_started.elapsed();
+            if now >= next_sample {
+                next_sample = now + opts.rss_every;
+                if let Some(rss) = rss_mib() {
+                    let sample = RssSample {
+                        wall_s: now.as_secs_f64(),
+                        windows: done,
+                        log_minutes: if total > 0 {
+                            opts.minutes * done as f64 / total as f64
+                        } else {
+                            0.0
+                        },
+                        rss_mib: rss,
+                    };
+                    // A trace of the run as it goes (CSGATE_LOG=debug), so that a run stopped
+                    // before its end still shows how memory behaved.
+                    tracing::debug!(
+                        wall_s = sample.wall_s,
+                        windows = done,
+                        log_minutes = sample.log_minutes,
+                        rss_mib = rss,
+                        "long replay memory sample"
+                    );
+                    samples.push(sample);
+                }
             }
-        }
-    })?;
+        },
+    )?;
     let peak = peak_rss_mib();
     drop(dir);
 
@@ -911,6 +943,81 @@ pub struct WindowSetManifest {
     pub values_file: String,
     /// Prefix of the output files.
     pub output: String,
+    /// Working precision of the solver: "f64" (default) or "f32".
+    #[serde(default = "f64_name")]
+    pub precision: String,
+}
+
+fn f64_name() -> String {
+    "f64".into()
+}
+
+/// What one pass over a window set gives per window.
+struct SetPass {
+    times: Vec<Vec<f64>>,
+    iterations: Vec<usize>,
+    objective: Vec<f64>,
+    relative_gap: Vec<f64>,
+    coefficients: Vec<f64>,
+}
+
+fn solve_set_in<T: crate::real::Real>(
+    set: &WindowSetManifest,
+    indices: &[u32],
+    values: &[f64],
+    manifest: &Path,
+    idx_path: &Path,
+) -> Result<SetPass, BenchError> {
+    let basis: SharedBasis<T> = BasisPlanner::new()
+        .plan(BasisKind::Dct, set.n)
+        .map_err(|e| set_err(manifest, e.to_string()))?;
+    let mut solver = Solver::new(Arc::clone(&basis));
+    let values: Vec<T> = values.iter().map(|&v| T::of(v)).collect();
+    let mut pass = SetPass {
+        times: vec![Vec::new(); set.count],
+        iterations: vec![0; set.count],
+        objective: vec![0.0; set.count],
+        relative_gap: vec![0.0; set.count],
+        coefficients: vec![0.0; set.count * set.n],
+    };
+    for _ in 0..set.repeats.max(1) {
+        let mut warm: Option<Vec<T>> = None;
+        for k in 0..set.count {
+            let settings = SolveSettings {
+                form: Form::Lasso {
+                    lambda: LambdaRule::Absolute(set.lambdas[k]),
+                },
+                gap_tol: set.gap_tol,
+                max_iter: set.max_iter,
+                restart: set.restart,
+                debias: set.debias,
+                ..SolveSettings::default()
+            };
+            let idx = &indices[k * set.m..(k + 1) * set.m];
+            let y = &values[k * set.m..(k + 1) * set.m];
+            let start = if set.warm_start {
+                warm.as_deref()
+            } else {
+                None
+            };
+            let t = Instant::now();
+            let sol = solver
+                .solve(idx, y, &settings, start)
+                .map_err(|e| set_err(idx_path, format!("window {k}: {e}")))?;
+            pass.times[k].push(t.elapsed().as_secs_f64() * 1e6);
+            pass.iterations[k] = sol.report.iterations;
+            pass.objective[k] = sol.report.objective;
+            pass.relative_gap[k] = sol.report.relative_gap;
+            for (o, c) in pass.coefficients[k * set.n..(k + 1) * set.n]
+                .iter_mut()
+                .zip(&sol.coefficients)
+            {
+                *o = c.to_f64_();
+            }
+            warm = Some(sol.lasso_coefficients);
+        }
+    }
+    Ok(pass)
 }
 
 fn yes() -> bool {
@@ -1003,47 +1110,17 @@ pub fn solve_window_set(manifest: &Path) -> Result<WindowSetResult, BenchError> 
     let val_path = folder.join(&set.values_file);
     let indices = read_le(&idx_path, set.count * set.m, "u32", u32::from_le_bytes)?;
     let values = read_le(&val_path, set.count * set.m, "f64", f64::from_le_bytes)?;
-    let basis: SharedBasis<f64> = BasisPlanner::new()
-        .plan(BasisKind::Dct, set.n)
-        .map_err(|e| set_err(manifest, e.to_string()))?;
-    let mut solver = Solver::new(Arc::clone(&basis));
-    let mut times: Vec<Vec<f64>> = vec![Vec::new(); set.count];
-    let mut iterations = vec![0; set.count];
-    let mut objective = vec![0.0; set.count];
-    let mut relative_gap = vec![0.0; set.count];
-    let mut coefficients = vec![0.0; set.count * set.n];
-    for _ in 0..set.repeats.max(1) {
-        let mut warm: Option<Vec<f64>> = None;
-        for k in 0..set.count {
-            let settings = SolveSettings {
-                form: Form::Lasso {
-                    lambda: LambdaRule::Absolute(set.lambdas[k]),
-                },
-                gap_tol: set.gap_tol,
-                max_iter: set.max_iter,
-                restart: set.restart,
-                debias: set.debias,
-                ..SolveSettings::default()
-            };
-            let idx = &indices[k * set.m..(k + 1) * set.m];
-            let y = &values[k * set.m..(k + 1) * set.m];
-            let start = if set.warm_start {
-                warm.as_deref()
-            } else {
-                None
-            };
-            let t = Instant::now();
-            let sol = solver
-                .solve(idx, y, &settings, start)
-                .map_err(|e| set_err(&idx_path, format!("window {k}: {e}")))?;
-            times[k].push(t.elapsed().as_secs_f64() * 1e6);
-            iterations[k] = sol.report.iterations;
-            objective[k] = sol.report.objective;
-            relative_gap[k] = sol.report.relative_gap;
-            coefficients[k * set.n..(k + 1) * set.n].copy_from_slice(&sol.coefficients);
-            warm = Some(sol.lasso_coefficients);
+    let mut pass = match set.precision.as_str() {
+        "f64" => solve_set_in::<f64>(&set, &indices, &values, manifest, &idx_path)?,
+        "f32" => solve_set_in::<f32>(&set, &indices, &values, manifest, &idx_path)?,
+        other => {
+            return Err(set_err(
+                manifest,
+                format!("precision {other:?} is not supported (expected \"f64\" or \"f32\")"),
+            ))
         }
-    }
+    };
+    let coefficients = pass.coefficients;
     let coef_name = format!("{}.coef.f64", set.output);
     let coef_path = folder.join(&coef_name);
     let bytes: Vec<u8> = coefficients.iter().flat_map(|v| v.to_le_bytes()).collect();
@@ -1051,10 +1128,10 @@ pub fn solve_window_set(manifest: &Path) -> Result<WindowSetResult, BenchError> 
     let result = WindowSetResult {
         version: 1,
         count: set.count,
-        iterations,
-        solve_us: times.iter_mut().map(|t| median(t)).collect(),
-        objective,
-        relative_gap,
+        iterations: pass.iterations,
+        solve_us: pass.times.iter_mut().map(|t| median(t)).collect(),
+        objective: pass.objective,
+        relative_gap: pass.relative_gap,
         coefficients_file: coef_name,
     };
     let json_path = folder.join(format!("{}.json", set.output));

@@ -7,12 +7,13 @@ resonance, white noise) is solved, window after window with a warm start from th
 window's solution, by:
 
   csgate         `csgate bench --solve-set` (FISTA with adaptive restart, DCT, f64, one core)
+  csgate f32     the same in f32 working precision (the gateway's default)
   numpy FISTA    Beck & Teboulle FISTA on scipy.fft.dct/idct (norm='ortho') operators
   numpy FISTA+R  the same with the gradient adaptive restart of O'Donoghue & Candes (2015)
   pylops FISTA   pylops.optimization.sparsity.fista on Restriction * DCT^H
   sklearn Lasso  sklearn.linear_model.Lasso (coordinate descent) on the explicit matrix
 
-all at the same lambda per window (0.01 ||A^T y||_inf, csgate's replay default). Every method
+all at the same lambda per window (0.01 ||A^T y||_inf, csgate's fixed starting weight). Every method
 stops on its own rule, set to the same target: csgate and both numpy FISTAs at a relative duality
 gap of 1e-4; scikit-learn at its dual-gap tolerance scaled to the same relative gap; pylops (which
 has no gap test) after as many iterations as plain numpy FISTA needed from the same start (the
@@ -46,7 +47,7 @@ FS = 25_600.0
 N = 4096
 HOP = 2048
 RATIOS = (0.125, 0.25, 0.5)
-LAMBDA_FRACTION = 0.01  # of lambda_max = ||A^T y||_inf, csgate's replay default
+LAMBDA_FRACTION = 0.01  # of lambda_max = ||A^T y||_inf, csgate's starting weight before tuning
 GAP_TOL = 1e-4
 CERT_TOL = 1e-9
 TARGET = 1e-3
@@ -220,7 +221,7 @@ def run_sklearn(sets_r, psi, f_cert, count):
     return out
 
 
-def run_csgate(binary, folder, ratio, sets_r, debias, tag):
+def run_csgate(binary, folder, ratio, sets_r, debias, tag, precision="f64"):
     idx, y, lam = sets_r
     count, m = idx.shape
     idx.astype("<u4").tofile(os.path.join(folder, f"idx_{tag}.u32"))
@@ -229,7 +230,7 @@ def run_csgate(binary, folder, ratio, sets_r, debias, tag):
         "version": 1, "n": N, "m": m, "count": count, "lambdas": [float(v) for v in lam],
         "gap_tol": GAP_TOL, "max_iter": 20000, "warm_start": True, "debias": debias,
         "restart": True, "repeats": 1, "indices_file": f"idx_{tag}.u32",
-        "values_file": f"y_{tag}.f64", "output": f"out_{tag}",
+        "values_file": f"y_{tag}.f64", "output": f"out_{tag}", "precision": precision,
     }
     path = os.path.join(folder, f"manifest_{tag}.json")
     with open(path, "w") as f:
@@ -291,7 +292,7 @@ def main():
           f"lambda {LAMBDA_FRACTION} lambda_max, gap tol {GAP_TOL:g}, {args.rounds} rounds")
     truth, sets = workload(args.windows)
     psi = scipy.fft.idct(np.eye(N), norm="ortho", axis=0)  # column j = Psi e_j
-    methods = ["csgate", "numpy FISTA", "numpy FISTA+R", "pylops FISTA", "sklearn Lasso"]
+    methods = ["csgate", "csgate f32", "numpy FISTA", "numpy FISTA+R", "pylops FISTA", "sklearn Lasso"]
     results = {r: {k: [] for k in methods} for r in RATIOS}
     cert = {}
     extra = {}
@@ -304,6 +305,8 @@ def main():
             for r in RATIOS:
                 tag = f"{r}_{rnd}"
                 results[r]["csgate"].append(run_csgate(args.csgate, folder, r, sets[r], False, tag))
+                results[r]["csgate f32"].append(
+                    run_csgate(args.csgate, folder, r, sets[r], False, tag + "_f32", "f32"))
                 plain = run_numpy(sets[r], False, args.windows)
                 results[r]["numpy FISTA"].append(plain)
                 results[r]["numpy FISTA+R"].append(run_numpy(sets[r], True, args.windows))

@@ -7,6 +7,7 @@ use csgate::bench::{
     long_replay, measure_capacity, solve_window_set, CapacityOptions, CapacityReport,
     LongReplayOptions, LongReplayReport, Phase, Workload,
 };
+use csgate::pipeline::reconstruct::Precision;
 use csgate::pipeline::run::PipelineConfig;
 use indicatif::{ProgressBar, ProgressStyle};
 use std::path::PathBuf;
@@ -75,6 +76,14 @@ pub struct BenchArgs {
     /// Folder in which to make the scratch folder (default: the system's temporary folder).
     #[arg(long, value_name = "DIR")]
     pub scratch: Option<PathBuf>,
+    /// Working precision of the solver in the capacity run (the gateway's default is f32;
+    /// f64 is the reference path).
+    #[arg(long, value_enum, default_value_t = Precision::F32)]
+    pub precision: Precision,
+    /// Capacity without the per-window trust figures (no hold-out solve): what the
+    /// reconstruction alone costs.
+    #[arg(long)]
+    pub no_trust: bool,
     /// Solve the window set of this manifest (side-by-side harness) and write the results
     /// beside it.
     #[arg(long, value_name = "MANIFEST.json")]
@@ -291,6 +300,14 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
         workers,
         solve_windows: args.solve_windows,
         scratch_in: args.scratch.clone(),
+        pipeline: {
+            let mut p = PipelineConfig {
+                precision: args.precision,
+                ..PipelineConfig::default()
+            };
+            p.trust.enabled = !args.no_trust;
+            p
+        },
         ..CapacityOptions::default()
     };
     let report = measure_capacity(&opts, &mut progress).context("capacity benchmark")?;
@@ -339,6 +356,18 @@ fn print_capacity(r: &CapacityReport) {
         r.windows_per_s,
         r.realtime_factor,
         r.replay_iterations_per_window
+    );
+    println!(
+        "solver      {}, {}",
+        match r.precision {
+            Precision::F32 => "f32",
+            Precision::F64 => "f64",
+        },
+        if r.trust {
+            "trust figures on every window (one hold-out solve each)"
+        } else {
+            "no trust figures (--no-trust)"
+        }
     );
     println!(
         "per window  {:.3} ms on one core (median, warm start, {:.0} iterations)",
