@@ -23,7 +23,7 @@ unacknowledged and --buffer windows waiting; a node that cannot send drops its o
 counts them. --corrupt flips one bit in that share of frames (the gateway must reject them and \
 close the connection; the node reconnects). Exit status 1 when a book does not balance.\n\n\
 The defaults (100 nodes of 1280 Hz, n = 1024, hop 512, m = 256: 250 windows/s) fit the \
-shared 2-core development machine with room to spare (BENCHMARKS.md section 8); full-rate nodes \
+shared 2-core development machine with room to spare (BENCHMARKS.md section 9); full-rate nodes \
 (--sample-rate 25600 --n 4096: 1250 windows/s for 100 nodes) exceed it several times over and show \
 back-pressure at work instead: the queues fill to their bounds, the nodes' buffers overflow, and \
 every window they drop is counted."
