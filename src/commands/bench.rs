@@ -238,15 +238,16 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
     }
 
     let channels = args.channels.unwrap_or((4 * workers).max(8));
+    let workload = Workload {
+        channels,
+        n: args.n,
+        hop,
+        m_over_n: args.m_over_n,
+        seed: args.seed,
+    };
     if args.broker {
         let opts = csgate::bench::transport::TransportOptions {
-            workload: Workload {
-                channels,
-                n: args.n,
-                hop,
-                m_over_n: args.m_over_n,
-                seed: args.seed,
-            },
+            workload: workload.clone(),
             seconds: args.seconds,
             workers,
             nats_server: args.nats_server.clone(),
@@ -289,13 +290,7 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
         return Ok(ExitCode::SUCCESS);
     }
     let opts = CapacityOptions {
-        workload: Workload {
-            channels,
-            n: args.n,
-            hop,
-            m_over_n: args.m_over_n,
-            seed: args.seed,
-        },
+        workload,
         seconds: args.seconds,
         workers,
         solve_windows: args.solve_windows,
