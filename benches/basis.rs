@@ -163,18 +163,45 @@ fn bench_dct_backends_for<T: Real>(c: &mut Criterion, prec: &str) {
     let x = input::<T>(n);
     let mut buf = x.clone();
 
-    // Ours: Makhoul over one n-point complex FFT.
+    // Ours: Makhoul over one n/2-point complex FFT with fused split passes (the default).
     let dct = Dct::<T>::new(n).unwrap();
     let mut scratch = BasisScratch::new();
     let mut want = x.clone();
     dct.analyze(&mut want, &mut scratch);
-    group.bench_function("makhoul_complex_fft", |b| {
+    group.bench_function("makhoul_half_fft", |b| {
         b.iter(|| {
             buf.copy_from_slice(&x);
             dct.analyze(black_box(&mut buf), &mut scratch);
             dct.synthesize(black_box(&mut buf), &mut scratch);
         })
     });
+
+    // Makhoul over one n-point complex FFT (the previous default).
+    let full = Dct::<T>::with_full_length_fft(n).unwrap();
+    group.bench_function("makhoul_complex_fft", |b| {
+        b.iter(|| {
+            buf.copy_from_slice(&x);
+            full.analyze(black_box(&mut buf), &mut scratch);
+            full.synthesize(black_box(&mut buf), &mut scratch);
+        })
+    });
+
+    // The sampled pair one FISTA iteration uses (m = n/4), for both routes.
+    let idx: Vec<usize> = (0..n).step_by(4).map(|i| i + (i / 4) % 4).collect();
+    let vals: Vec<T> = idx.iter().map(|&i| x[i]).collect();
+    let mut at = vec![T::zero(); idx.len()];
+    let mut grid = vec![T::zero(); n];
+    for (name, d) in [
+        ("sampled_pair_half_fft", &dct),
+        ("sampled_pair_complex_fft", &full),
+    ] {
+        group.bench_function(name, |b| {
+            b.iter(|| {
+                d.analyze_from(&idx, &vals, black_box(&mut buf), &mut scratch);
+                d.synthesize_at(&buf, &idx, black_box(&mut at), &mut grid, &mut scratch);
+            })
+        });
+    }
 
     // Makhoul over realfft (half-length complex FFT plus pre/post-processing).
     let mut rdct = RealFftDct::<T>::new(n);

@@ -774,9 +774,10 @@ fn coherence_with_time_samples() {
 #[test]
 fn sampled_dct_paths_equal_full_transforms() {
     // Property (common practice): the DCT's fused sampled synthesis and scattered analysis are
-    // the full transforms followed by a gather / preceded by a scatter, for even and odd n.
+    // the full transforms followed by a gather / preceded by a scatter, for odd n (one n-point
+    // FFT) and even n (one n/2-point FFT; n/2 odd and even both covered).
     use csgate::basis::BasisScratch;
-    for n in [7usize, 8, 64, 1000, 4096] {
+    for n in [2usize, 6, 7, 8, 10, 64, 1000, 4094, 4096] {
         let basis = csgate::basis::BasisPlanner::<f64>::new()
             .plan(BasisKind::Dct, n)
             .unwrap();
@@ -790,6 +791,16 @@ fn sampled_dct_paths_equal_full_transforms() {
         basis.synthesize_at(&coeffs, &idx, &mut out, &mut grid, &mut scratch);
         for (o, &i) in out.iter().zip(&idx) {
             assert!((o - full[i]).abs() < 1e-12, "n {n} synthesis at {i}");
+        }
+        // The half-length route (even n) agrees with the n-point route.
+        let reference = csgate::basis::Dct::<f64>::with_full_length_fft(n).unwrap();
+        let mut direct = coeffs.clone();
+        reference.synthesize(&mut direct, &mut scratch);
+        for (a, b) in direct.iter().zip(&full) {
+            assert!(
+                (a - b).abs() < 1e-12,
+                "n {n}: half-length against n-point route"
+            );
         }
         let values: Vec<f64> = idx.iter().map(|&i| (i as f64 * 0.1).sin()).collect();
         let mut dense = vec![0.0; n];

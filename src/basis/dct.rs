@@ -40,6 +40,20 @@ use std::sync::Arc;
 #[derive(Clone)]
 pub struct Dct<T: Real> {
     len: usize,
+    path: Path<T>,
+}
+
+/// How the transform runs: even lengths on one half-length complex FFT, odd lengths on one
+/// full-length complex FFT.
+#[derive(Clone)]
+enum Path<T: Real> {
+    Full(Full<T>),
+    Half(Box<Half<T>>),
+}
+
+/// Makhoul over one n-point complex FFT (odd n).
+#[derive(Clone)]
+struct Full<T: Real> {
     fft: Arc<dyn Fft<T>>,
     /// `s_k * exp(-i pi k / (2n))`: analysis post-twiddle with the orthonormal scale.
     twiddle_analysis: Vec<Complex<T>>,
@@ -48,9 +62,76 @@ pub struct Dct<T: Real> {
     fft_scratch_len: usize,
 }
 
+/// Makhoul over one (n/2)-point complex FFT (even n).
+///
+/// Makhoul's reordered real sequence `v` (length n) is read as n/2 complex values
+/// `z[j] = v[2j] + i v[2j+1]` (the packing of a real FFT), so the real n-point FFT of `v` costs one
+/// n/2-point complex FFT plus one split pass (the standard real-FFT packing; e.g. Press et
+/// al., Numerical Recipes, 3rd ed., section 12.3). The split pass is fused with Makhoul's
+/// twiddle and the orthonormal scale, so each direction is: one gather or scatter, one
+/// half-length FFT, one fused pass. Coefficients are stored split into real and imaginary
+/// arrays so the fused loops vectorize.
+///
+/// Why by hand: realfft does the same packing but writes the n/2 + 1 spectrum to a separate
+/// buffer in its own pass, and Makhoul's twiddle then needs a second pass over it; the fused
+/// pass here measured faster (`benches/basis.rs`, group `dct_backend`).
+#[derive(Clone)]
+struct Half<T: Real> {
+    fwd: Arc<dyn Fft<T>>,
+    inv: Arc<dyn Fft<T>>,
+    /// Analysis, for k = 0..=n/2: `X[k] = Re(c1 Z[k] + c2 conj Z[n/2-k])`.
+    c1: Split<T>,
+    c2: Split<T>,
+    /// Analysis, for k = 1..n/2: `X[n-k] = Re(d1 Z[k] + d2 conj Z[n/2-k])`, stored with k
+    /// descending.
+    d1: Split<T>,
+    d2: Split<T>,
+    /// Synthesis, for k = 0..n/2: `Z[k] = (X[k] - i X[n-k]) e + (X[n/2-k] + i X[n/2+k]) f`.
+    e: Split<T>,
+    f: Split<T>,
+    fft_scratch_len: usize,
+}
+
+/// Complex coefficients stored as separate real and imaginary arrays.
+#[derive(Clone, Default)]
+struct Split<T> {
+    re: Vec<T>,
+    im: Vec<T>,
+}
+
+impl<T: Real> Split<T> {
+    fn from_fn(len: usize, f: impl Fn(usize) -> (f64, f64)) -> Self {
+        let (re, im) = (0..len).map(f).map(|(a, b)| (T::of(a), T::of(b))).unzip();
+        Self { re, im }
+    }
+}
+
+/// `(re, im)` products in f64, for the coefficient tables.
+fn cmul(a: (f64, f64), b: (f64, f64)) -> (f64, f64) {
+    (a.0 * b.0 - a.1 * b.1, a.0 * b.1 + a.1 * b.0)
+}
+
+fn conj(a: (f64, f64)) -> (f64, f64) {
+    (a.0, -a.1)
+}
+
+fn expi(theta: f64) -> (f64, f64) {
+    let (s, c) = theta.sin_cos();
+    (c, s)
+}
+
 impl<T: Real> fmt::Debug for Dct<T> {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
-        f.debug_struct("Dct").field("len", &self.len).finish()
+        f.debug_struct("Dct")
+            .field("len", &self.len)
+            .field(
+                "fft",
+                &match self.path {
+                    Path::Full(_) => "n-point complex",
+                    Path::Half(_) => "n/2-point complex",
+                },
+            )
+            .finish()
     }
 }
 
@@ -61,6 +142,20 @@ impl<T: Real> Dct<T> {
     /// [`BasisError::BadLength`] if `len == 0`.
     pub fn new(len: usize) -> Result<Self, BasisError> {
         Self::with_planner(len, &mut FftPlanner::new())
+    }
+
+    /// Plans the n-point complex FFT route for any length, even where the half-length route
+    /// applies: the previous default, kept for the backend comparison in `benches/basis.rs`
+    /// and the agreement test.
+    ///
+    /// # Errors
+    /// [`BasisError::BadLength`] if `len == 0`.
+    pub fn with_full_length_fft(len: usize) -> Result<Self, BasisError> {
+        let mut dct = Self::new(len)?;
+        if len % 2 == 0 {
+            dct.path = Path::Full(Full::new(len, &mut FftPlanner::new()));
+        }
+        Ok(dct)
     }
 
     /// Plans an orthonormal DCT of length `len`, taking the FFT from `planner` (so FFTs of the
@@ -76,35 +171,260 @@ impl<T: Real> Dct<T> {
                 why: "the length must be at least 1".into(),
             });
         }
+        let path = if len % 2 == 0 {
+            Path::Half(Box::new(Half::new(len, planner)))
+        } else {
+            Path::Full(Full::new(len, planner))
+        };
+        Ok(Self { len, path })
+    }
+}
+
+/// The orthonormal DCT scale `s_k`.
+fn scale(n: usize, k: usize) -> f64 {
+    if k == 0 {
+        (1.0 / n as f64).sqrt()
+    } else {
+        (2.0 / n as f64).sqrt()
+    }
+}
+
+impl<T: Real> Full<T> {
+    fn new(len: usize, planner: &mut FftPlanner<T>) -> Self {
         let fft = planner.plan_fft_forward(len);
         let n = len as f64;
-        let scale = |k: usize| {
-            if k == 0 {
-                (1.0 / n).sqrt()
-            } else {
-                (2.0 / n).sqrt()
-            }
-        };
         let mut twiddle_analysis = Vec::with_capacity(len);
         let mut twiddle_synthesis = Vec::with_capacity(len);
         for k in 0..len {
             // Angles in f64 even for f32 so the twiddles are correctly rounded.
-            let theta = -std::f64::consts::PI * k as f64 / (2.0 * n);
-            let (s, c) = theta.sin_cos();
-            let a = scale(k);
+            let (c, s) = expi(-std::f64::consts::PI * k as f64 / (2.0 * n));
+            let a = scale(len, k);
             twiddle_analysis.push(Complex::new(T::of(a * c), T::of(a * s)));
             // The inverse needs exp(+i pi k/(2n)) / (n s_k); conjugated (see `synthesize`).
             let b = 1.0 / (n * a);
             twiddle_synthesis.push(Complex::new(T::of(b * c), T::of(b * s)));
         }
         let fft_scratch_len = fft.get_inplace_scratch_len();
-        Ok(Self {
-            len,
+        Self {
             fft,
             twiddle_analysis,
             twiddle_synthesis,
             fft_scratch_len,
-        })
+        }
+    }
+
+    /// Makhoul's inverse into `v` (length n): `v[p]` is the signal at Makhoul position `p`
+    /// (grid index `2p` for `p < ceil(n/2)`, else `2(n-1-p)+1`), in the real parts.
+    fn synthesize_into(&self, coeffs: &[T], v: &mut [Complex<T>], fft_scratch: &mut [Complex<T>]) {
+        let n = coeffs.len();
+        // Makhoul's inverse: V[k] = exp(i pi k/(2n)) (X[k] - i X[n-k]) with X unnormalized,
+        // v = IFFT(V). We build conj(V) and run the forward FFT: Re(FFT(conj V)) = n Re(IFFT V),
+        // and the 1/n sits in the twiddle.
+        v[0] = Complex::new(coeffs[0] * self.twiddle_synthesis[0].re, T::zero());
+        for k in 1..n {
+            v[k] = Complex::new(coeffs[k], coeffs[n - k]) * self.twiddle_synthesis[k];
+        }
+        self.fft.process_with_scratch(v, fft_scratch);
+    }
+
+    /// Makhoul's forward from `v` (real parts filled in Makhoul order) into `out`.
+    fn analyze_from_v(&self, v: &mut [Complex<T>], fft_scratch: &mut [Complex<T>], out: &mut [T]) {
+        self.fft.process_with_scratch(v, fft_scratch);
+        for ((o, z), w) in out.iter_mut().zip(v.iter()).zip(&self.twiddle_analysis) {
+            *o = z.re * w.re - z.im * w.im;
+        }
+    }
+}
+
+impl<T: Real> Half<T> {
+    fn new(len: usize, planner: &mut FftPlanner<T>) -> Self {
+        use std::f64::consts::PI;
+        let n = len as f64;
+        let m = len / 2;
+        let fwd = planner.plan_fft_forward(m);
+        let inv = planner.plan_fft_inverse(m);
+        // Analysis. With a = Z[k], b = conj Z[m-k] (Z[m] = Z[0]) and t_k = exp(-2 pi i k/n):
+        // the even and odd half-spectra are (a + b)/2 and -i(a - b)/2, so Makhoul's
+        // V[k] = P_k a + Q_k b with P_k = (1 - i t_k)/2, Q_k = (1 + i t_k)/2. Then
+        // X[k] = Re(w_k V[k]) and X[n-k] = Re(w_(n-k) conj V[k]) = Re(conj(w_(n-k)) V[k]), where
+        // w_k = s_k exp(-i pi k/(2n)) is Makhoul's post-twiddle with the orthonormal scale.
+        let w = |k: usize| {
+            let (c, s) = expi(-PI * k as f64 / (2.0 * n));
+            (scale(len, k) * c, scale(len, k) * s)
+        };
+        let t = |k: usize| expi(-2.0 * PI * k as f64 / n);
+        let p = |k: usize| {
+            let it = cmul((0.0, 1.0), t(k));
+            ((1.0 - it.0) / 2.0, -it.1 / 2.0)
+        };
+        let q = |k: usize| {
+            let it = cmul((0.0, 1.0), t(k));
+            ((1.0 + it.0) / 2.0, it.1 / 2.0)
+        };
+        let c1 = Split::from_fn(m + 1, |k| cmul(w(k), p(k)));
+        let c2 = Split::from_fn(m + 1, |k| cmul(w(k), q(k)));
+        // Stored reversed: index j holds k = m-1-j (see `analyze_from_z`).
+        let d1 = Split::from_fn(m - 1, |j| cmul(conj(w(len - (m - 1 - j))), p(m - 1 - j)));
+        let d2 = Split::from_fn(m - 1, |j| cmul(conj(w(len - (m - 1 - j))), q(m - 1 - j)));
+        // Synthesis. U[k] = n conj(c_k) with c_k = (X[k] + i X[n-k]) u_k,
+        // u_k = exp(-i pi k/(2n)) / (n s_k) (Makhoul's inverse, as `Full`) is the Hermitian
+        // spectrum of v. The half-spectra of the even and odd samples are
+        // (U[k] + conj U[m-k])/2 and (U[k] - conj U[m-k]) conj(t_k)/2, and Z = even + i odd, so
+        // Z[k] = (X[k] - i X[n-k]) e_k + (X[m-k] + i X[m+k]) f_k with
+        // e_k = n conj(u_k) (1 + i conj t_k)/2 and f_k = n u_(m-k) (1 - i conj t_k)/2; the
+        // inverse FFT is unnormalized, so 1/m is folded in too.
+        let u = |k: usize| {
+            let (c, s) = expi(-PI * k as f64 / (2.0 * n));
+            let b = 1.0 / (n * scale(len, k));
+            (b * c, b * s)
+        };
+        let r = |k: usize| {
+            let it = cmul((0.0, 1.0), conj(t(k)));
+            ((1.0 + it.0) / 2.0, it.1 / 2.0)
+        };
+        let s = |k: usize| {
+            let it = cmul((0.0, 1.0), conj(t(k)));
+            ((1.0 - it.0) / 2.0, -it.1 / 2.0)
+        };
+        let g = n / m as f64;
+        let e = Split::from_fn(m, |k| {
+            let z = cmul(conj(u(k)), r(k));
+            (g * z.0, g * z.1)
+        });
+        let f = Split::from_fn(m, |k| {
+            let z = cmul(u(m - k), s(k));
+            (g * z.0, g * z.1)
+        });
+        let fft_scratch_len = fwd
+            .get_inplace_scratch_len()
+            .max(inv.get_inplace_scratch_len());
+        Self {
+            fwd,
+            inv,
+            c1,
+            c2,
+            d1,
+            d2,
+            e,
+            f,
+            fft_scratch_len,
+        }
+    }
+
+    /// Synthesis into `z` (length n/2): afterwards `z` holds Makhoul's reordered signal `v`
+    /// packed as `v[2j] = z[j].re`, `v[2j+1] = z[j].im`. `rev` (length n) is scratch.
+    fn synthesize_into(
+        &self,
+        x: &[T],
+        rev: &mut [T],
+        z: &mut [Complex<T>],
+        fft_scratch: &mut [Complex<T>],
+    ) {
+        let n = x.len();
+        let m = n / 2;
+        // k = 0: X[n] is taken as 0 and X[m + 0] = X[m - 0] = X[m].
+        {
+            let (xr, y) = (x[0], x[m]);
+            let (er, ei, fr, fi) = (self.e.re[0], self.e.im[0], self.f.re[0], self.f.im[0]);
+            z[0] = Complex::new(xr * er + y * fr - y * fi, xr * ei + y * fi + y * fr);
+        }
+        // k = 1..m reads X[k] and X[m+k] ascending, X[n-k] and X[m-k] descending. A reversed
+        // copy (rev[j] = X[n-1-j], so X[n-k] = rev[k-1] and X[m-k] = rev[m-1+k]) makes every
+        // stream ascending, and the loop vectorizes.
+        for (r, &v) in rev.iter_mut().zip(x.iter().rev()) {
+            *r = v;
+        }
+        let len = m - 1;
+        let iter = z[1..m]
+            .iter_mut()
+            .zip(x[1..m].iter().zip(&x[m + 1..n]))
+            .zip(rev[..len].iter().zip(&rev[m..m + len]))
+            .zip(self.e.re[1..m].iter().zip(&self.e.im[1..m]))
+            .zip(self.f.re[1..m].iter().zip(&self.f.im[1..m]));
+        for ((((o, (&xr, &yi)), (&xi, &yr)), (&er, &ei)), (&fr, &fi)) in iter {
+            *o = Complex::new(
+                xr * er + xi * ei + yr * fr - yi * fi,
+                xr * ei - xi * er + yr * fi + yi * fr,
+            );
+        }
+        self.inv.process_with_scratch(z, fft_scratch);
+    }
+
+    /// Analysis from `z` (Makhoul's reordered samples, packed as in `synthesize_into`) into
+    /// `out`. `zrev` (length n/2) is scratch.
+    fn analyze_from_z(
+        &self,
+        z: &mut [Complex<T>],
+        zrev: &mut [Complex<T>],
+        fft_scratch: &mut [Complex<T>],
+        out: &mut [T],
+    ) {
+        self.fwd.process_with_scratch(z, fft_scratch);
+        let m = z.len();
+        let n = out.len();
+        // Re(c1 a + c2 conj b) with a = b = Z[0] for k = 0 and k = m (Z[m] = Z[0]).
+        let edge = |k: usize| {
+            let a = z[0];
+            self.c1.re[k] * a.re - self.c1.im[k] * a.im
+                + self.c2.re[k] * a.re
+                + self.c2.im[k] * a.im
+        };
+        out[0] = edge(0);
+        out[m] = edge(m);
+        // k = 1..m needs Z[k] ascending and Z[m-k] descending; with the reversed copy
+        // zrev[k] = Z[m-k] both are ascending. X[k] fills out[1..m] ascending. X[n-k] fills
+        // out[m+1..n] descending in k, so that loop runs over j = m-1-k (ascending), reading
+        // Z[k] = zrev[j+1], Z[m-k] = Z[j+1], and d1, d2 stored reversed (index j).
+        zrev[0] = z[0];
+        for (r, &v) in zrev[1..m].iter_mut().zip(z[1..m].iter().rev()) {
+            *r = v;
+        }
+        let (lo, hi) = out.split_at_mut(m + 1);
+        let iter = lo[1..m]
+            .iter_mut()
+            .zip(z[1..m].iter().zip(&zrev[1..m]))
+            .zip(self.c1.re[1..m].iter().zip(&self.c1.im[1..m]))
+            .zip(self.c2.re[1..m].iter().zip(&self.c2.im[1..m]));
+        for (((x, (a, b)), (&c1r, &c1i)), (&c2r, &c2i)) in iter {
+            *x = c1r * a.re - c1i * a.im + c2r * b.re + c2i * b.im;
+        }
+        let iter = hi[..n - m - 1]
+            .iter_mut()
+            .zip(zrev[1..m].iter().zip(&z[1..m]))
+            .zip(self.d1.re.iter().zip(&self.d1.im))
+            .zip(self.d2.re.iter().zip(&self.d2.im));
+        for (((x, (a, b)), (&d1r, &d1i)), (&d2r, &d2i)) in iter {
+            *x = d1r * a.re - d1i * a.im + d2r * b.re + d2i * b.im;
+        }
+    }
+}
+
+/// `z[j] = v[2j] + i v[2j+1]`.
+#[inline]
+fn pack<T: Real>(v: &[T], z: &mut [Complex<T>]) {
+    for (c, pair) in z.iter_mut().zip(v.chunks_exact(2)) {
+        *c = Complex::new(pair[0], pair[1]);
+    }
+}
+
+/// `v[2j] = z[j].re`, `v[2j+1] = z[j].im`.
+#[inline]
+fn unpack<T: Real>(z: &[Complex<T>], v: &mut [T]) {
+    for (c, pair) in z.iter().zip(v.chunks_exact_mut(2)) {
+        pair[0] = c.re;
+        pair[1] = c.im;
+    }
+}
+
+/// Makhoul's reordering: position of grid index `i` in the reordered sequence of length `n`
+/// (even samples ascending, then odd samples descending).
+#[inline]
+fn makhoul_pos(i: usize, n: usize) -> usize {
+    let j = i >> 1;
+    if i & 1 == 0 {
+        j
+    } else {
+        n - 1 - j
     }
 }
 
@@ -122,23 +442,30 @@ impl<T: Real> Basis<T> for Dct<T> {
         if buf.len() != n {
             length_mismatch(n, buf.len());
         }
-        let (_, work) = scratch.take(0, n + self.fft_scratch_len);
-        let (v, fft_scratch) = work.split_at_mut(n);
-        // Makhoul's inverse: V[k] = exp(i pi k/(2n)) (X[k] - i X[n-k]) with X unnormalized,
-        // v = IFFT(V). We build conj(V) and run the forward FFT: Re(FFT(conj V)) = n Re(IFFT V),
-        // and the 1/n sits in the twiddle.
-        v[0] = Complex::new(buf[0] * self.twiddle_synthesis[0].re, T::zero());
-        for k in 1..n {
-            let z = Complex::new(buf[k], buf[n - k]); // conj(X[k] - i X[n-k])
-            v[k] = z * self.twiddle_synthesis[k];
-        }
-        self.fft.process_with_scratch(v, fft_scratch);
-        let half = n.div_ceil(2);
-        for j in 0..half {
-            buf[2 * j] = v[j].re;
-        }
-        for j in 0..n / 2 {
-            buf[2 * j + 1] = v[n - 1 - j].re;
+        match &self.path {
+            Path::Full(p) => {
+                let (_, work) = scratch.take(0, n + p.fft_scratch_len);
+                let (v, fft_scratch) = work.split_at_mut(n);
+                p.synthesize_into(buf, v, fft_scratch);
+                let half = n.div_ceil(2);
+                for j in 0..half {
+                    buf[2 * j] = v[j].re;
+                }
+                for j in 0..n / 2 {
+                    buf[2 * j + 1] = v[n - 1 - j].re;
+                }
+            }
+            Path::Half(p) => {
+                let m = n / 2;
+                let (rev, work) = scratch.take(n, m + p.fft_scratch_len);
+                let (z, fft_scratch) = work.split_at_mut(m);
+                p.synthesize_into(buf, rev, z, fft_scratch);
+                unpack(z, rev);
+                for j in 0..m {
+                    buf[2 * j] = rev[j];
+                    buf[2 * j + 1] = rev[n - 1 - j];
+                }
+            }
         }
     }
 
@@ -154,18 +481,28 @@ impl<T: Real> Basis<T> for Dct<T> {
         if coeffs.len() != n {
             length_mismatch(n, coeffs.len());
         }
-        let (_, work) = scratch.take(0, n + self.fft_scratch_len);
-        let (v, fft_scratch) = work.split_at_mut(n);
-        // As `synthesize`, reading the coefficients in place and the FFT output only at the
-        // sampled instants: grid index 2j is v[j], 2j + 1 is v[n - 1 - j].
-        v[0] = Complex::new(coeffs[0] * self.twiddle_synthesis[0].re, T::zero());
-        for k in 1..n {
-            v[k] = Complex::new(coeffs[k], coeffs[n - k]) * self.twiddle_synthesis[k];
-        }
-        self.fft.process_with_scratch(v, fft_scratch);
-        for (o, &i) in out.iter_mut().zip(indices) {
-            let j = i >> 1;
-            *o = v[if i & 1 == 0 { j } else { n - 1 - j }].re;
+        // As `synthesize`, reading the transform's output only at the sampled instants.
+        match &self.path {
+            Path::Full(p) => {
+                let (_, work) = scratch.take(0, n + p.fft_scratch_len);
+                let (v, fft_scratch) = work.split_at_mut(n);
+                p.synthesize_into(coeffs, v, fft_scratch);
+                for (o, &i) in out.iter_mut().zip(indices) {
+                    *o = v[makhoul_pos(i, n)].re;
+                }
+            }
+            Path::Half(p) => {
+                let m = n / 2;
+                let (v, work) = scratch.take(n, m + p.fft_scratch_len);
+                let (z, fft_scratch) = work.split_at_mut(m);
+                p.synthesize_into(coeffs, v, z, fft_scratch);
+                // Unpack first: a gather straight from the packed values would branch on the
+                // parity of each (random) position.
+                unpack(z, v);
+                for (o, &i) in out.iter_mut().zip(indices) {
+                    *o = v[makhoul_pos(i, n)];
+                }
+            }
         }
     }
 
@@ -180,17 +517,32 @@ impl<T: Real> Basis<T> for Dct<T> {
         if out.len() != n {
             length_mismatch(n, out.len());
         }
-        let (_, work) = scratch.take(0, n + self.fft_scratch_len);
-        let (v, fft_scratch) = work.split_at_mut(n);
         // As `analyze`, scattering the samples straight into Makhoul's reordered buffer.
-        v.fill(Complex::new(T::zero(), T::zero()));
-        for (&x, &i) in values.iter().zip(indices) {
-            let j = i >> 1;
-            v[if i & 1 == 0 { j } else { n - 1 - j }] = Complex::new(x, T::zero());
-        }
-        self.fft.process_with_scratch(v, fft_scratch);
-        for ((o, z), w) in out.iter_mut().zip(v.iter()).zip(&self.twiddle_analysis) {
-            *o = z.re * w.re - z.im * w.im;
+        match &self.path {
+            Path::Full(p) => {
+                let (_, work) = scratch.take(0, n + p.fft_scratch_len);
+                let (v, fft_scratch) = work.split_at_mut(n);
+                v.fill(Complex::new(T::zero(), T::zero()));
+                for (&x, &i) in values.iter().zip(indices) {
+                    v[makhoul_pos(i, n)] = Complex::new(x, T::zero());
+                }
+                p.analyze_from_v(v, fft_scratch, out);
+            }
+            Path::Half(p) => {
+                let m = n / 2;
+                let (_, work) = scratch.take(0, 2 * m + p.fft_scratch_len);
+                let (z, work) = work.split_at_mut(m);
+                let (zrev, fft_scratch) = work.split_at_mut(m);
+                z.fill(Complex::new(T::zero(), T::zero()));
+                for (&x, &i) in values.iter().zip(indices) {
+                    // Branch-free: the parity of a random position would mispredict.
+                    let p = makhoul_pos(i, n);
+                    let c = &mut z[p >> 1];
+                    let odd = p & 1 == 1;
+                    *c = Complex::new(if odd { c.re } else { x }, if odd { x } else { c.im });
+                }
+                p.analyze_from_z(z, zrev, fft_scratch, out);
+            }
         }
     }
 
@@ -199,19 +551,32 @@ impl<T: Real> Basis<T> for Dct<T> {
         if buf.len() != n {
             length_mismatch(n, buf.len());
         }
-        let (_, work) = scratch.take(0, n + self.fft_scratch_len);
-        let (v, fft_scratch) = work.split_at_mut(n);
         // Makhoul's reordering: even samples ascending, then odd samples descending.
-        let half = n.div_ceil(2);
-        for j in 0..half {
-            v[j] = Complex::new(buf[2 * j], T::zero());
-        }
-        for j in 0..n / 2 {
-            v[n - 1 - j] = Complex::new(buf[2 * j + 1], T::zero());
-        }
-        self.fft.process_with_scratch(v, fft_scratch);
-        for ((out, z), w) in buf.iter_mut().zip(v.iter()).zip(&self.twiddle_analysis) {
-            *out = z.re * w.re - z.im * w.im;
+        match &self.path {
+            Path::Full(p) => {
+                let (_, work) = scratch.take(0, n + p.fft_scratch_len);
+                let (v, fft_scratch) = work.split_at_mut(n);
+                let half = n.div_ceil(2);
+                for j in 0..half {
+                    v[j] = Complex::new(buf[2 * j], T::zero());
+                }
+                for j in 0..n / 2 {
+                    v[n - 1 - j] = Complex::new(buf[2 * j + 1], T::zero());
+                }
+                p.analyze_from_v(v, fft_scratch, buf);
+            }
+            Path::Half(p) => {
+                let m = n / 2;
+                let (v, work) = scratch.take(n, 2 * m + p.fft_scratch_len);
+                let (z, work) = work.split_at_mut(m);
+                let (zrev, fft_scratch) = work.split_at_mut(m);
+                for j in 0..m {
+                    v[j] = buf[2 * j];
+                    v[n - 1 - j] = buf[2 * j + 1];
+                }
+                pack(v, z);
+                p.analyze_from_z(z, zrev, fft_scratch, buf);
+            }
         }
     }
 
