@@ -1,25 +1,26 @@
 //! Orthonormal DCT-II (analysis) and DCT-III (synthesis), the default sparsity basis for
 //! vibration windows.
 //!
-//! Both directions run on one n-point complex FFT after the even/odd reordering of Makhoul
-//! (J. Makhoul, "A fast cosine transform in one and multiple dimensions", IEEE Trans. ASSP
-//! 28(1), 1980), with the orthonormal scaling folded into precomputed twiddles.
-//!
-//! The inverse runs the same forward FFT on the conjugate, so one plan serves both directions.
+//! Both directions follow the even/odd reordering of Makhoul (J. Makhoul, "A fast cosine
+//! transform in one and multiple dimensions", IEEE Trans. ASSP 28(1), 1980), with the
+//! orthonormal scaling folded into precomputed twiddles. For even n the reordered real sequence
+//! is packed into n/2 complex values and transformed by one n/2-point complex FFT, with the
+//! real-FFT split fused into Makhoul's twiddle pass (see `Half`); odd n use one n-point complex
+//! FFT (see `Full`).
 //!
 //! Why this backend: `benches/basis.rs` group `dct_backend` times one analysis plus one
-//! synthesis at n = 4096 (criterion medians, 2 shared cores under other builds, so absolute
-//! figures are inflated; each cell is "quieter run / loaded run", same ranking in both):
+//! synthesis at n = 4096, and the sampled pair of one FISTA iteration (scattered analysis plus
+//! synthesis read at m = n/4 instants). Criterion medians, 2026-12-03, 2-core AMD EPYC virtual
+//! machine, otherwise idle (`cargo bench --bench basis -- dct_backend`):
 //!
 //! | backend | f32 | f64 |
 //! |---|---|---|
-//! | Makhoul over one n-point complex FFT (this file) | 26.5 us / 71.7 us | 53.6 us / 107 us |
-//! | Makhoul over realfft (half-length FFT) | 35.4 us / 95.1 us | 44.8 us / 75.2 us |
-//! | rustdct `plan_dct2` / `plan_dct3` + scaling | 64.0 us / 133 us | 74.0 us / 147 us |
-//!
-//! f32 is the production precision of the solver loop, and there the complex-FFT route is
-//! fastest; in f64 realfft is ~20-30% quicker, which is a candidate follow-up if f64 windows
-//! turn out to matter.
+//! | Makhoul over one n/2-point complex FFT, fused split (this file, even n) | 24.5 us | 46.0 us |
+//! | the same, sampled pair | 23.3 us | 43.1 us |
+//! | Makhoul over one n-point complex FFT (the previous default; odd n) | 38.5 us | 76.5 us |
+//! | the same, sampled pair | 40.8 us | 71.0 us |
+//! | Makhoul over realfft (half-length FFT, separate split pass) | 35.9 us | 51.6 us |
+//! | rustdct `plan_dct2` / `plan_dct3` + scaling | 68.7 us | 76.9 us |
 
 use super::{length_mismatch, Basis, BasisError, BasisKind, BasisScratch};
 use crate::real::Real;
