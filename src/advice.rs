@@ -23,7 +23,9 @@
 //! 3. **Fast attack.** When the need is above the current advice by at least `min_change`, the
 //!    advice rises to it at once.
 //! 4. **Slow release.** The advice falls only after `release_windows` consecutive trusted
-//!    windows whose largest need is below the advice by at least `min_change`, and then by at
+//!    windows (windows without trust figures, e.g. between the sampled ones of
+//!    `pipeline.trust.every`, are passed over: they neither count nor break the run)
+//!    whose largest need is below the advice by at least `min_change`, and then by at
 //!    most `release_step` of itself (default 15%) towards that largest need. A machine that
 //!    flickers between states is therefore advised for its worse state.
 //! 5. Advice is rounded up to a multiple of `round_to` (fewer distinct values, fewer messages)
@@ -234,8 +236,10 @@ impl Advisor {
                 need,
             });
         }
-        if low || w.low_trust.is_none() {
-            // Only assessed, trusted windows count towards a release.
+        // Not assessed: passed over (only assessed, trusted windows count towards a release,
+        // and only a low-trust one breaks the run).
+        w.low_trust?;
+        if low {
             self.calm = 0;
             self.calm_need = 0;
             return None;

@@ -449,8 +449,10 @@ pub struct CapacityReport {
     pub workers: usize,
     /// Working precision of the solver.
     pub precision: Precision,
-    /// Whether every window also had its trust figures (the hold-out solve).
+    /// Whether windows also had their trust figures (the hold-out solve).
     pub trust: bool,
+    /// The hold-out solve ran on every this many windows of a stream (1: every window).
+    pub trust_every: usize,
     /// Channels in the measured log.
     pub channels_tested: usize,
     /// Seconds of signal per channel.
@@ -532,6 +534,7 @@ pub fn measure_capacity(
         workers: opts.workers,
         precision: opts.pipeline.precision,
         trust: opts.pipeline.trust.enabled,
+        trust_every: opts.pipeline.trust.every,
         channels_tested: w.channels,
         seconds: opts.seconds,
         windows: report.pipeline.windows,

@@ -84,6 +84,9 @@ pub struct BenchArgs {
     /// reconstruction alone costs.
     #[arg(long)]
     pub no_trust: bool,
+    /// Trust figures on every N-th window of a stream only (see `csgate replay --trust-every`).
+    #[arg(long, value_name = "N", default_value_t = 1, value_parser = clap::value_parser!(u32).range(1..))]
+    pub trust_every: u32,
     /// Solve the window set of this manifest (side-by-side harness) and write the results
     /// beside it.
     #[arg(long, value_name = "MANIFEST.json")]
@@ -301,6 +304,7 @@ pub fn run(args: BenchArgs) -> anyhow::Result<ExitCode> {
                 ..PipelineConfig::default()
             };
             p.trust.enabled = !args.no_trust;
+            p.trust.every = args.trust_every as usize;
             p
         },
         ..CapacityOptions::default()
@@ -358,10 +362,10 @@ fn print_capacity(r: &CapacityReport) {
             Precision::F32 => "f32",
             Precision::F64 => "f64",
         },
-        if r.trust {
-            "trust figures on every window (one hold-out solve each)"
-        } else {
-            "no trust figures (--no-trust)"
+        match (r.trust, r.trust_every) {
+            (true, 1) => "trust figures on every window (one hold-out solve each)".to_string(),
+            (true, k) => format!("trust figures on one window in {k} (--trust-every {k})"),
+            (false, _) => "no trust figures (--no-trust)".to_string(),
         }
     );
     println!(

@@ -96,6 +96,10 @@ pub struct ReplayArgs {
     /// No trust figures: skip the hold-out solve (`cv_error` NaN, `trust` 0).
     #[arg(long)]
     pub no_trust: bool,
+    /// Trust figures on the windows whose sequence number is a multiple of N only (the
+    /// others as with --no-trust, at the stream's tuned weight): capacity for fewer figures.
+    #[arg(long, value_name = "N", default_value_t = 1, value_parser = clap::value_parser!(u32).range(1..))]
+    pub trust_every: u32,
     /// Print the summary as one JSON object instead of text.
     #[arg(long)]
     pub json: bool,
@@ -140,6 +144,7 @@ pub fn run(args: ReplayArgs) -> anyhow::Result<ExitCode> {
     pipeline.analytics.block_s = args.block_s;
     pipeline.analytics.enabled = !args.no_features;
     pipeline.trust.enabled = !args.no_trust;
+    pipeline.trust.every = args.trust_every as usize;
     pipeline.trust.tune_lambda = !args.no_tune;
     pipeline.precision = args.precision;
     if let Some(path) = &args.machines {

@@ -294,20 +294,22 @@ impl WorkerState {
         // The hold-out solve first, warm from the previous window; the full solve then starts
         // from its solution, so it only has to absorb the held-out samples (see trust.rs).
         let m = y.len();
-        let holdout = if job.trust.enabled {
+        let holdout = if job.trust.samples(job.packet.header.seq) {
             job.trust.holdout_len(m)
         } else {
             None
         };
         // The stream's LASSO weight: tuned by the hold-out when the solver takes a fraction of
-        // lambda_max and a hold-out is made (trust.rs, "Tuning lambda").
-        let tuned = match (&job.settings.form, holdout) {
-            (
-                Form::Lasso {
-                    lambda: LambdaRule::FractionOfMax(f0),
-                },
-                Some(_),
-            ) if job.trust.tune_lambda => Some(warm.lambda.fraction.unwrap_or(*f0)),
+        // lambda_max and a hold-out is made (trust.rs, "Tuning lambda"). With trust on a
+        // sample of windows (`trust.every`), the others use the stream's current weight too.
+        let tuned = match &job.settings.form {
+            Form::Lasso {
+                lambda: LambdaRule::FractionOfMax(f0),
+            } if job.trust.tune_lambda
+                && (holdout.is_some() || (job.trust.enabled && job.trust.every > 1)) =>
+            {
+                Some(warm.lambda.fraction.unwrap_or(*f0))
+            }
             _ => None,
         };
         let with_fraction = |settings: &SolveSettings, f: f64| SolveSettings {

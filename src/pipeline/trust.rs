@@ -101,6 +101,11 @@ pub struct TrustConfig {
     /// Compute the trust figures. Default on. Off: `cv_error` stays NaN and `trust` 0
     /// (unknown), and no extra solve runs.
     pub enabled: bool,
+    /// Run the hold-out solve on the windows whose sequence number is a multiple of this, to
+    /// buy capacity with fewer trust figures. Default 1 (every window). The other windows get
+    /// no figures (`cv_error` NaN, `trust` 0, as with `enabled = false`) but are solved at the
+    /// stream's tuned weight; the sampling advice passes over them.
+    pub every: usize,
     /// Fraction of each window's samples held out. Default 0.1 (Ward 2009 suggests a small
     /// fraction; 10% of m = 1024 gives h = 102 and an estimate within about +/-10%).
     pub holdout_fraction: f64,
@@ -141,6 +146,7 @@ impl Default for TrustConfig {
     fn default() -> Self {
         Self {
             enabled: true,
+            every: 1,
             holdout_fraction: 0.1,
             min_holdout: 8,
             max_cv_error: 0.3,
@@ -186,6 +192,9 @@ impl TrustConfig {
                 self.tune_tolerance
             ));
         }
+        if self.every == 0 {
+            return Err("trust.every must be at least 1".into());
+        }
         if self.tune_every == 0 {
             return Err("trust.tune_every must be at least 1".into());
         }
@@ -206,6 +215,12 @@ impl TrustConfig {
             ));
         }
         Ok(())
+    }
+
+    /// Whether the window with sequence number `seq` gets a hold-out solve (see
+    /// [`TrustConfig::every`]).
+    pub fn samples(&self, seq: u64) -> bool {
+        self.enabled && seq % self.every.max(1) as u64 == 0
     }
 
     /// Samples to hold out of `m`, or `None` when the window is too small for an estimate.
