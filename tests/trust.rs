@@ -206,11 +206,19 @@ fn run_stream(packets: &[Packet], tune: bool) -> (Vec<Vec<f64>>, f64) {
     (out, fraction)
 }
 
-/// As [`run_stream`] with the given trust settings; also says which windows had figures.
-fn run_stream_with(packets: &[Packet], trust: TrustConfig) -> (Vec<Vec<f64>>, f64, Vec<bool>) {
+/// One window of [`run_stream_with`]: whether it had trust figures and the fraction of
+/// `lambda_max` it was solved at.
+struct WindowRun {
+    assessed: bool,
+    fraction: f64,
+}
+
+/// As [`run_stream`] with the given trust settings; also says, per window, whether it had
+/// figures and the weight it was solved at.
+fn run_stream_with(packets: &[Packet], trust: TrustConfig) -> (Vec<Vec<f64>>, f64, Vec<WindowRun>) {
     let cfg = PipelineConfig::default();
     let trust = Arc::new(trust);
-    let mut assessed = Vec::new();
+    let mut runs = Vec::new();
     let settings = Arc::new(cfg.solver.clone());
     let mut worker = WorkerState::new(Arc::new(BasisPlanner::new()));
     let mut warm = WarmState::default();
@@ -230,10 +238,27 @@ fn run_stream_with(packets: &[Packet], trust: TrustConfig) -> (Vec<Vec<f64>>, f6
         };
         let r = worker.run(job);
         warm = r.warm;
-        assessed.push(r.trust.is_some());
-        out.push(r.outcome.expect("reconstructed").0);
+        let (signal, report) = r.outcome.expect("reconstructed");
+        runs.push(WindowRun {
+            assessed: r.trust.is_some(),
+            fraction: report.lambda / report.lambda_max,
+        });
+        out.push(signal);
     }
-    (out, warm.lambda.fraction.unwrap_or(f64::NAN), assessed)
+    (out, warm.lambda.fraction.unwrap_or(f64::NAN), runs)
+}
+
+/// SNR in dB of the second half of the windows against the truth (window k starts at k * hop).
+fn second_half_snr_db(windows: &[Vec<f64>], truth: &[f64], hop: usize) -> f64 {
+    let (mut e, mut s) = (0.0, 0.0);
+    for (k, w) in windows.iter().enumerate().skip(windows.len() / 2) {
+        for (j, v) in w.iter().enumerate() {
+            let t = truth[k * hop + j];
+            e += (v - t) * (v - t);
+            s += t * t;
+        }
+    }
+    10.0 * (s / e).log10()
 }
 
 #[test]
@@ -248,24 +273,30 @@ fn trust_on_a_sample_of_windows() {
         every: 4,
         ..TrustConfig::default()
     };
-    let (sampled, f_sampled, assessed) = run_stream_with(&packets, every);
-    let (all, f_all, assessed_all) = run_stream_with(&packets, TrustConfig::default());
-    assert!(assessed_all.iter().all(|&a| a));
-    for (p, &a) in packets.iter().zip(&assessed) {
-        assert_eq!(a, p.header.seq % 4 == 0, "window {}", p.header.seq);
+    let (sampled, f_sampled, runs) = run_stream_with(&packets, every);
+    let (all, f_all, runs_all) = run_stream_with(&packets, TrustConfig::default());
+    assert!(runs_all.iter().all(|r| r.assessed));
+    for (p, r) in packets.iter().zip(&runs) {
+        assert_eq!(r.assessed, p.header.seq % 4 == 0, "window {}", p.header.seq);
     }
-    let snr_db = |windows: &[Vec<f64>]| -> f64 {
-        let (mut e, mut s) = (0.0, 0.0);
-        for (k, w) in windows.iter().enumerate().skip(windows.len() / 2) {
-            for (j, v) in w.iter().enumerate() {
-                let t = truth[k * hop + j];
-                e += (v - t) * (v - t);
-                s += t * t;
-            }
-        }
-        10.0 * (s / e).log10()
-    };
-    let (snr_sampled, snr_all) = (snr_db(&sampled), snr_db(&all));
+    // The weight moves only after an assessed window, so a window without figures is solved
+    // at the weight the next assessed window uses: the stream's tuned one, not the start.
+    let mut moved = false;
+    for (k, r) in runs.iter().enumerate().filter(|(_, r)| !r.assessed) {
+        let Some(next) = runs[k..].iter().find(|n| n.assessed) else {
+            continue;
+        };
+        assert!(
+            (r.fraction - next.fraction).abs() <= 1e-6 * next.fraction,
+            "window {k}: fraction {} against {} of the next assessed window",
+            r.fraction,
+            next.fraction
+        );
+        moved |= (r.fraction - 0.01).abs() > 1e-6;
+    }
+    assert!(moved, "no window without figures ran at a tuned weight");
+    let snr_sampled = second_half_snr_db(&sampled, &truth, hop);
+    let snr_all = second_half_snr_db(&all, &truth, hop);
     eprintln!(
         "demo 103/1, second half: trust on 1 window in 4: fraction {f_sampled:.4}, SNR \
          {snr_sampled:.2} dB; on every window: fraction {f_all:.4}, SNR {snr_all:.2} dB"
@@ -288,19 +319,9 @@ fn lambda_tuning_lowers_the_error_on_a_noisy_machine_stream() {
     let (tuned, f_tuned) = run_stream(&packets, true);
     let (fixed, f_fixed) = run_stream(&packets, false);
     assert!(f_fixed.is_nan(), "no tuning state without tuning");
-    let snr_db = |windows: &[Vec<f64>]| -> f64 {
-        let (mut e, mut s) = (0.0, 0.0);
-        for (k, w) in windows.iter().enumerate().skip(windows.len() / 2) {
-            for (j, v) in w.iter().enumerate() {
-                let t = truth[k * hop + j];
-                e += (v - t) * (v - t);
-                s += t * t;
-            }
-        }
-        assert_eq!(windows[0].len(), n);
-        10.0 * (s / e).log10()
-    };
-    let (snr_tuned, snr_fixed) = (snr_db(&tuned), snr_db(&fixed));
+    assert_eq!((tuned[0].len(), fixed[0].len()), (n, n));
+    let snr_tuned = second_half_snr_db(&tuned, &truth, hop);
+    let snr_fixed = second_half_snr_db(&fixed, &truth, hop);
     eprintln!(
         "demo 103/1: tuned fraction {f_tuned:.4}; SNR of the second half's windows: tuned \
          {snr_tuned:.2} dB, fixed 0.01 {snr_fixed:.2} dB"

@@ -152,11 +152,13 @@ impl<T: Real> Dct<T> {
     /// # Errors
     /// [`BasisError::BadLength`] if `len == 0`.
     pub fn with_full_length_fft(len: usize) -> Result<Self, BasisError> {
-        let mut dct = Self::new(len)?;
-        if len % 2 == 0 {
-            dct.path = Path::Full(Full::new(len, &mut FftPlanner::new()));
+        if len == 0 {
+            return Self::new(len); // the same error
         }
-        Ok(dct)
+        Ok(Self {
+            len,
+            path: Path::Full(Full::new(len, &mut FftPlanner::new())),
+        })
     }
 
     /// Plans an orthonormal DCT of length `len`, taking the FFT from `planner` (so FFTs of the
