@@ -10,6 +10,7 @@ use std::fmt::{Debug, Display};
 /// A real floating-point scalar usable by the transforms (through rustfft) and the solvers.
 pub trait Real:
     rustfft::FftNum
+    + bytemuck::Pod
     + realfft::FftNum
     + rustdct::DctNum
     + Float

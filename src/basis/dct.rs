@@ -402,23 +402,6 @@ impl<T: Real> Half<T> {
     }
 }
 
-/// `z[j] = v[2j] + i v[2j+1]`.
-#[inline]
-fn pack<T: Real>(v: &[T], z: &mut [Complex<T>]) {
-    for (c, pair) in z.iter_mut().zip(v.chunks_exact(2)) {
-        *c = Complex::new(pair[0], pair[1]);
-    }
-}
-
-/// `v[2j] = z[j].re`, `v[2j+1] = z[j].im`.
-#[inline]
-fn unpack<T: Real>(z: &[Complex<T>], v: &mut [T]) {
-    for (c, pair) in z.iter().zip(v.chunks_exact_mut(2)) {
-        pair[0] = c.re;
-        pair[1] = c.im;
-    }
-}
-
 /// Makhoul's reordering: position of grid index `i` in the reordered sequence of length `n`
 /// (even samples ascending, then odd samples descending).
 #[inline]
@@ -463,10 +446,10 @@ impl<T: Real> Basis<T> for Dct<T> {
                 let (rev, work) = scratch.take(n, m + p.fft_scratch_len);
                 let (z, fft_scratch) = work.split_at_mut(m);
                 p.synthesize_into(buf, rev, z, fft_scratch);
-                unpack(z, rev);
+                let v: &[T] = bytemuck::cast_slice(z);
                 for j in 0..m {
-                    buf[2 * j] = rev[j];
-                    buf[2 * j + 1] = rev[n - 1 - j];
+                    buf[2 * j] = v[j];
+                    buf[2 * j + 1] = v[n - 1 - j];
                 }
             }
         }
@@ -496,12 +479,11 @@ impl<T: Real> Basis<T> for Dct<T> {
             }
             Path::Half(p) => {
                 let m = n / 2;
-                let (v, work) = scratch.take(n, m + p.fft_scratch_len);
+                let (rev, work) = scratch.take(n, m + p.fft_scratch_len);
                 let (z, fft_scratch) = work.split_at_mut(m);
-                p.synthesize_into(coeffs, v, z, fft_scratch);
-                // Unpack first: a gather straight from the packed values would branch on the
-                // parity of each (random) position.
-                unpack(z, v);
+                p.synthesize_into(coeffs, rev, z, fft_scratch);
+                // The packed values read as n interleaved reals are `v` itself.
+                let v: &[T] = bytemuck::cast_slice(z);
                 for (o, &i) in out.iter_mut().zip(indices) {
                     *o = v[makhoul_pos(i, n)];
                 }
@@ -537,12 +519,10 @@ impl<T: Real> Basis<T> for Dct<T> {
                 let (z, work) = work.split_at_mut(m);
                 let (zrev, fft_scratch) = work.split_at_mut(m);
                 z.fill(Complex::new(T::zero(), T::zero()));
+                // The packed buffer read as n interleaved reals is `v`: one store per sample.
+                let v: &mut [T] = bytemuck::cast_slice_mut(z);
                 for (&x, &i) in values.iter().zip(indices) {
-                    // Branch-free: the parity of a random position would mispredict.
-                    let p = makhoul_pos(i, n);
-                    let c = &mut z[p >> 1];
-                    let odd = p & 1 == 1;
-                    *c = Complex::new(if odd { c.re } else { x }, if odd { x } else { c.im });
+                    v[makhoul_pos(i, n)] = x;
                 }
                 p.analyze_from_z(z, zrev, fft_scratch, out);
             }
@@ -570,14 +550,14 @@ impl<T: Real> Basis<T> for Dct<T> {
             }
             Path::Half(p) => {
                 let m = n / 2;
-                let (v, work) = scratch.take(n, 2 * m + p.fft_scratch_len);
+                let (_, work) = scratch.take(0, 2 * m + p.fft_scratch_len);
                 let (z, work) = work.split_at_mut(m);
                 let (zrev, fft_scratch) = work.split_at_mut(m);
+                let v: &mut [T] = bytemuck::cast_slice_mut(z);
                 for j in 0..m {
                     v[j] = buf[2 * j];
                     v[n - 1 - j] = buf[2 * j + 1];
                 }
-                pack(v, z);
                 p.analyze_from_z(z, zrev, fft_scratch, buf);
             }
         }
