@@ -88,12 +88,10 @@ pub trait Lanes<T>:
     fn max(self, o: Self) -> Self;
     /// `if o < self { o } else { self }` lane-wise (no NaN handling).
     fn min(self, o: Self) -> Self;
-    /// All-ones lanes where `self > o`, zero lanes elsewhere (a mask for `&` and [`Self::pick`]).
+    /// All-ones lanes where `self > o`, zero lanes elsewhere (a mask for `&`).
     fn gt(self, o: Self) -> Self;
     /// All-ones lanes where `self != o`.
     fn ne(self, o: Self) -> Self;
-    /// `self` as a mask: lanes of `t` where it is all ones, of `f` elsewhere.
-    fn pick(self, t: Self, f: Self) -> Self;
     /// Sum of the lanes.
     fn sum(self) -> T;
     /// Largest lane.
@@ -136,10 +134,6 @@ macro_rules! lanes_impl {
             #[inline(always)]
             fn ne(self, o: Self) -> Self {
                 wide::CmpNe::cmp_ne(self, o)
-            }
-            #[inline(always)]
-            fn pick(self, t: Self, f: Self) -> Self {
-                self.blend(t, f)
             }
             #[inline(always)]
             fn sum(self) -> $scalar {

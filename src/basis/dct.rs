@@ -63,6 +63,13 @@ struct Full<T: Real> {
     fft_scratch_len: usize,
 }
 
+/// `(z, zrev, fft_scratch)` of [`Half::analysis_buffers`].
+type AnalysisBuffers<'a, T> = (
+    &'a mut [Complex<T>],
+    &'a mut [Complex<T>],
+    &'a mut [Complex<T>],
+);
+
 /// Makhoul over one (n/2)-point complex FFT (even n).
 ///
 /// Makhoul's reordered real sequence `v` (length n) is read as n/2 complex values
@@ -353,6 +360,19 @@ impl<T: Real> Half<T> {
         self.inv.process_with_scratch(z, fft_scratch);
     }
 
+    /// The analysis buffers from `scratch`: `z` and `zrev` (length `m` = n/2 each), then the
+    /// FFT's scratch.
+    fn analysis_buffers<'a>(
+        &self,
+        m: usize,
+        scratch: &'a mut BasisScratch<T>,
+    ) -> AnalysisBuffers<'a, T> {
+        let (_, work) = scratch.take(0, 2 * m + self.fft_scratch_len);
+        let (z, work) = work.split_at_mut(m);
+        let (zrev, fft_scratch) = work.split_at_mut(m);
+        (z, zrev, fft_scratch)
+    }
+
     /// Analysis from `z` (Makhoul's reordered samples, packed as in `synthesize_into`) into
     /// `out`. `zrev` (length n/2) is scratch.
     fn analyze_from_z(
@@ -515,9 +535,7 @@ impl<T: Real> Basis<T> for Dct<T> {
             }
             Path::Half(p) => {
                 let m = n / 2;
-                let (_, work) = scratch.take(0, 2 * m + p.fft_scratch_len);
-                let (z, work) = work.split_at_mut(m);
-                let (zrev, fft_scratch) = work.split_at_mut(m);
+                let (z, zrev, fft_scratch) = p.analysis_buffers(m, scratch);
                 z.fill(Complex::new(T::zero(), T::zero()));
                 // The packed buffer read as n interleaved reals is `v`: one store per sample.
                 let v: &mut [T] = bytemuck::cast_slice_mut(z);
@@ -550,9 +568,7 @@ impl<T: Real> Basis<T> for Dct<T> {
             }
             Path::Half(p) => {
                 let m = n / 2;
-                let (_, work) = scratch.take(0, 2 * m + p.fft_scratch_len);
-                let (z, work) = work.split_at_mut(m);
-                let (zrev, fft_scratch) = work.split_at_mut(m);
+                let (z, zrev, fft_scratch) = p.analysis_buffers(m, scratch);
                 let v: &mut [T] = bytemuck::cast_slice_mut(z);
                 for j in 0..m {
                     v[j] = buf[2 * j];
