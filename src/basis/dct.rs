@@ -360,6 +360,17 @@ impl<T: Real> Half<T> {
         self.inv.process_with_scratch(z, fft_scratch);
     }
 
+    /// Synthesis of `x` into Makhoul's reordered signal `v` (length n), returned as the packed
+    /// buffer read as n interleaved reals (which it is, see `synthesize_into`).
+    fn synthesize_packed<'a>(&self, x: &[T], scratch: &'a mut BasisScratch<T>) -> &'a [T] {
+        let n = x.len();
+        let m = n / 2;
+        let (rev, work) = scratch.take(n, m + self.fft_scratch_len);
+        let (z, fft_scratch) = work.split_at_mut(m);
+        self.synthesize_into(x, rev, z, fft_scratch);
+        bytemuck::cast_slice(z)
+    }
+
     /// The analysis buffers from `scratch`: `z` and `zrev` (length `m` = n/2 each), then the
     /// FFT's scratch.
     fn analysis_buffers<'a>(
@@ -463,10 +474,7 @@ impl<T: Real> Basis<T> for Dct<T> {
             }
             Path::Half(p) => {
                 let m = n / 2;
-                let (rev, work) = scratch.take(n, m + p.fft_scratch_len);
-                let (z, fft_scratch) = work.split_at_mut(m);
-                p.synthesize_into(buf, rev, z, fft_scratch);
-                let v: &[T] = bytemuck::cast_slice(z);
+                let v = p.synthesize_packed(buf, scratch);
                 for j in 0..m {
                     buf[2 * j] = v[j];
                     buf[2 * j + 1] = v[n - 1 - j];
@@ -498,12 +506,7 @@ impl<T: Real> Basis<T> for Dct<T> {
                 }
             }
             Path::Half(p) => {
-                let m = n / 2;
-                let (rev, work) = scratch.take(n, m + p.fft_scratch_len);
-                let (z, fft_scratch) = work.split_at_mut(m);
-                p.synthesize_into(coeffs, rev, z, fft_scratch);
-                // The packed values read as n interleaved reals are `v` itself.
-                let v: &[T] = bytemuck::cast_slice(z);
+                let v = p.synthesize_packed(coeffs, scratch);
                 for (o, &i) in out.iter_mut().zip(indices) {
                     *o = v[makhoul_pos(i, n)];
                 }
