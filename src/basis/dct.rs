@@ -63,12 +63,8 @@ struct Full<T: Real> {
     fft_scratch_len: usize,
 }
 
-/// `(z, zrev, fft_scratch)` of [`Half::analysis_buffers`].
-type AnalysisBuffers<'a, T> = (
-    &'a mut [Complex<T>],
-    &'a mut [Complex<T>],
-    &'a mut [Complex<T>],
-);
+/// `(z, fft_scratch)` of [`Half::analysis_buffers`].
+type AnalysisBuffers<'a, T> = (&'a mut [Complex<T>], &'a mut [Complex<T>]);
 
 /// Makhoul over one (n/2)-point complex FFT (even n).
 ///
@@ -273,9 +269,9 @@ impl<T: Real> Half<T> {
         };
         let c1 = Split::from_fn(m + 1, |k| cmul(w(k), p(k)));
         let c2 = Split::from_fn(m + 1, |k| cmul(w(k), q(k)));
-        // Stored reversed: index j holds k = m-1-j (see `analyze_from_z`).
-        let d1 = Split::from_fn(m - 1, |j| cmul(conj(w(len - (m - 1 - j))), p(m - 1 - j)));
-        let d2 = Split::from_fn(m - 1, |j| cmul(conj(w(len - (m - 1 - j))), q(m - 1 - j)));
+        // Index i holds k = i + 1 (k = 1..m-1, see `analyze_from_z`).
+        let d1 = Split::from_fn(m - 1, |i| cmul(conj(w(len - (i + 1))), p(i + 1)));
+        let d2 = Split::from_fn(m - 1, |i| cmul(conj(w(len - (i + 1))), q(i + 1)));
         // Synthesis. U[k] = n conj(c_k) with c_k = (X[k] + i X[n-k]) u_k,
         // u_k = exp(-i pi k/(2n)) / (n s_k) (Makhoul's inverse, as `Full`) is the Hermitian
         // spectrum of v. The half-spectra of the even and odd samples are
@@ -322,14 +318,8 @@ impl<T: Real> Half<T> {
     }
 
     /// Synthesis into `z` (length n/2): afterwards `z` holds Makhoul's reordered signal `v`
-    /// packed as `v[2j] = z[j].re`, `v[2j+1] = z[j].im`. `rev` (length n) is scratch.
-    fn synthesize_into(
-        &self,
-        x: &[T],
-        rev: &mut [T],
-        z: &mut [Complex<T>],
-        fft_scratch: &mut [Complex<T>],
-    ) {
+    /// packed as `v[2j] = z[j].re`, `v[2j+1] = z[j].im`.
+    fn synthesize_into(&self, x: &[T], z: &mut [Complex<T>], fft_scratch: &mut [Complex<T>]) {
         let n = x.len();
         let m = n / 2;
         // k = 0: X[n] is taken as 0 and X[m + 0] = X[m - 0] = X[m].
@@ -338,17 +328,13 @@ impl<T: Real> Half<T> {
             let (er, ei, fr, fi) = (self.e.re[0], self.e.im[0], self.f.re[0], self.f.im[0]);
             z[0] = Complex::new(xr * er + y * fr - y * fi, xr * ei + y * fi + y * fr);
         }
-        // k = 1..m reads X[k] and X[m+k] ascending, X[n-k] and X[m-k] descending. A reversed
-        // copy (rev[j] = X[n-1-j], so X[n-k] = rev[k-1] and X[m-k] = rev[m-1+k]) makes every
-        // stream ascending, and the loop vectorizes.
-        for (r, &v) in rev.iter_mut().zip(x.iter().rev()) {
-            *r = v;
-        }
-        let len = m - 1;
+        // k = 1..m reads X[k] and X[m+k] ascending, X[n-k] and X[m-k] descending: the
+        // descending streams are the same two slices read backwards (the loop still vectorizes,
+        // with a lane reversal per load, and no reversed copy is made).
         let iter = z[1..m]
             .iter_mut()
             .zip(x[1..m].iter().zip(&x[m + 1..n]))
-            .zip(rev[..len].iter().zip(&rev[m..m + len]))
+            .zip(x[m + 1..n].iter().rev().zip(x[1..m].iter().rev()))
             .zip(self.e.re[1..m].iter().zip(&self.e.im[1..m]))
             .zip(self.f.re[1..m].iter().zip(&self.f.im[1..m]));
         for ((((o, (&xr, &yi)), (&xi, &yr)), (&er, &ei)), (&fr, &fi)) in iter {
@@ -365,34 +351,25 @@ impl<T: Real> Half<T> {
     fn synthesize_packed<'a>(&self, x: &[T], scratch: &'a mut BasisScratch<T>) -> &'a [T] {
         let n = x.len();
         let m = n / 2;
-        let (rev, work) = scratch.take(n, m + self.fft_scratch_len);
+        let (_, work) = scratch.take(0, m + self.fft_scratch_len);
         let (z, fft_scratch) = work.split_at_mut(m);
-        self.synthesize_into(x, rev, z, fft_scratch);
+        self.synthesize_into(x, z, fft_scratch);
         bytemuck::cast_slice(z)
     }
 
-    /// The analysis buffers from `scratch`: `z` and `zrev` (length `m` = n/2 each), then the
-    /// FFT's scratch.
+    /// The analysis buffers from `scratch`: `z` (length `m` = n/2), then the FFT's scratch.
     fn analysis_buffers<'a>(
         &self,
         m: usize,
         scratch: &'a mut BasisScratch<T>,
     ) -> AnalysisBuffers<'a, T> {
-        let (_, work) = scratch.take(0, 2 * m + self.fft_scratch_len);
-        let (z, work) = work.split_at_mut(m);
-        let (zrev, fft_scratch) = work.split_at_mut(m);
-        (z, zrev, fft_scratch)
+        let (_, work) = scratch.take(0, m + self.fft_scratch_len);
+        work.split_at_mut(m)
     }
 
     /// Analysis from `z` (Makhoul's reordered samples, packed as in `synthesize_into`) into
-    /// `out`. `zrev` (length n/2) is scratch.
-    fn analyze_from_z(
-        &self,
-        z: &mut [Complex<T>],
-        zrev: &mut [Complex<T>],
-        fft_scratch: &mut [Complex<T>],
-        out: &mut [T],
-    ) {
+    /// `out`.
+    fn analyze_from_z(&self, z: &mut [Complex<T>], fft_scratch: &mut [Complex<T>], out: &mut [T]) {
         self.fwd.process_with_scratch(z, fft_scratch);
         let m = z.len();
         let n = out.len();
@@ -405,18 +382,13 @@ impl<T: Real> Half<T> {
         };
         out[0] = edge(0);
         out[m] = edge(m);
-        // k = 1..m needs Z[k] ascending and Z[m-k] descending; with the reversed copy
-        // zrev[k] = Z[m-k] both are ascending. X[k] fills out[1..m] ascending. X[n-k] fills
-        // out[m+1..n] descending in k, so that loop runs over j = m-1-k (ascending), reading
-        // Z[k] = zrev[j+1], Z[m-k] = Z[j+1], and d1, d2 stored reversed (index j).
-        zrev[0] = z[0];
-        for (r, &v) in zrev[1..m].iter_mut().zip(z[1..m].iter().rev()) {
-            *r = v;
-        }
+        // k = 1..m needs a = Z[k] ascending and b = Z[m-k] descending (the same slice read
+        // backwards). X[k] fills out[1..m] ascending; X[n-k] fills out[m+1..n] descending,
+        // written in a second pass with the output read backwards (d1, d2 indexed by k - 1).
         let (lo, hi) = out.split_at_mut(m + 1);
         let iter = lo[1..m]
             .iter_mut()
-            .zip(z[1..m].iter().zip(&zrev[1..m]))
+            .zip(z[1..m].iter().zip(z[1..m].iter().rev()))
             .zip(self.c1.re[1..m].iter().zip(&self.c1.im[1..m]))
             .zip(self.c2.re[1..m].iter().zip(&self.c2.im[1..m]));
         for (((x, (a, b)), (&c1r, &c1i)), (&c2r, &c2i)) in iter {
@@ -424,7 +396,8 @@ impl<T: Real> Half<T> {
         }
         let iter = hi[..n - m - 1]
             .iter_mut()
-            .zip(zrev[1..m].iter().zip(&z[1..m]))
+            .rev()
+            .zip(z[1..m].iter().zip(z[1..m].iter().rev()))
             .zip(self.d1.re.iter().zip(&self.d1.im))
             .zip(self.d2.re.iter().zip(&self.d2.im));
         for (((x, (a, b)), (&d1r, &d1i)), (&d2r, &d2i)) in iter {
@@ -538,14 +511,14 @@ impl<T: Real> Basis<T> for Dct<T> {
             }
             Path::Half(p) => {
                 let m = n / 2;
-                let (z, zrev, fft_scratch) = p.analysis_buffers(m, scratch);
+                let (z, fft_scratch) = p.analysis_buffers(m, scratch);
                 z.fill(Complex::new(T::zero(), T::zero()));
                 // The packed buffer read as n interleaved reals is `v`: one store per sample.
                 let v: &mut [T] = bytemuck::cast_slice_mut(z);
                 for (&x, &i) in values.iter().zip(indices) {
                     v[makhoul_pos(i, n)] = x;
                 }
-                p.analyze_from_z(z, zrev, fft_scratch, out);
+                p.analyze_from_z(z, fft_scratch, out);
             }
         }
     }
@@ -571,13 +544,13 @@ impl<T: Real> Basis<T> for Dct<T> {
             }
             Path::Half(p) => {
                 let m = n / 2;
-                let (z, zrev, fft_scratch) = p.analysis_buffers(m, scratch);
+                let (z, fft_scratch) = p.analysis_buffers(m, scratch);
                 let v: &mut [T] = bytemuck::cast_slice_mut(z);
                 for j in 0..m {
                     v[j] = buf[2 * j];
                     v[n - 1 - j] = buf[2 * j + 1];
                 }
-                p.analyze_from_z(z, zrev, fft_scratch, buf);
+                p.analyze_from_z(z, fft_scratch, buf);
             }
         }
     }
