@@ -224,6 +224,18 @@ fn a_stream_override_sets_that_streams_basis_only() {
         config_digest: String::new(),
         events: None,
     };
+    // The first pass declares the overridden stream with its own basis, as the dispatcher
+    // does; a different declaration would reach the writer after the single file started
+    // (which failed this replay whenever another stream's samples got there first).
+    let scan =
+        csgate::pipeline::replay::scan_logs(&opts.logs, &opts.limits, &opts.keys, &opts.pipeline)
+            .unwrap();
+    let bases: Vec<(u32, String)> = scan
+        .streams
+        .iter()
+        .map(|(id, m)| (id.node, m.basis.clone()))
+        .collect();
+    assert_eq!(bases, vec![(3, "dct".to_string()), (5, "db4".to_string())]);
     let report = replay(&opts, |_, _| {}).unwrap();
     assert_eq!(report.pipeline.windows, 12);
     let rec = RecordReader::open(&out).unwrap();
