@@ -360,8 +360,8 @@ impl WorkerState {
             // measures, so its gap tolerance is relaxed (see HOLDOUT_GAP_TOL); a window that
             // also probes the stream's weight compares two hold-out solves within 1%, so it
             // solves to the tighter TUNING_GAP_TOL.
-            let probing = tuned.is_some_and(|f| warm.lambda.probe(&job.trust, f).is_some());
-            let relaxed = if probing {
+            let probe = tuned.and_then(|f| warm.lambda.probe(&job.trust, f));
+            let relaxed = if probe.is_some() {
                 TUNING_GAP_TOL
             } else {
                 HOLDOUT_GAP_TOL
@@ -389,7 +389,7 @@ impl WorkerState {
                 let cv = trust::cv_error(&y_h, &predict(&signal), y_norm, m);
                 let mut iterations = report.iterations;
                 if let Some(f) = tuned {
-                    if let Some(f_probe) = warm.lambda.probe(&job.trust, f) {
+                    if let Some(f_probe) = probe {
                         // The same held-out samples at the probed weight, warm from the
                         // first solve (a nearby problem): a paired comparison.
                         let probe_settings = SolveSettings {

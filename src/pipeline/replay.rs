@@ -113,13 +113,9 @@ pub fn stream_meta(p: &Packet, config: &PipelineConfig) -> StreamMeta {
         start_time_unix_ns: h.t0_us.saturating_mul(1000),
         capture_id: h.capture_id,
         units: h.units.symbol().to_string(),
-        // The stream's own basis when a `[[pipeline.stream]]` override sets one, as the
-        // dispatcher declares it: a different declaration would arrive after the file started.
-        basis: config
-            .override_for(h.stream)
-            .and_then(|o| o.basis)
-            .unwrap_or(config.basis)
-            .to_string(),
+        // As the dispatcher declares it: a different declaration would arrive after the file
+        // started.
+        basis: config.basis_for(h.stream).to_string(),
     }
 }
 

@@ -146,6 +146,14 @@ impl PipelineConfig {
         self.streams.iter().find(|o| o.matches(stream))
     }
 
+    /// The basis `stream` is reconstructed in: its override's, else the pipeline's. The
+    /// dispatcher and the replay's first pass both declare the stream with it.
+    pub fn basis_for(&self, stream: StreamId) -> BasisKind {
+        self.override_for(stream)
+            .and_then(|o| o.basis)
+            .unwrap_or(self.basis)
+    }
+
     /// Checks the settings that serde cannot; the message names the field.
     pub fn check(&self) -> Result<(), String> {
         self.trust.check()?;
@@ -659,7 +667,7 @@ impl Dispatcher<'_> {
             return i;
         }
         let i = self.slots.len();
-        let over = self.config.streams.iter().find(|o| o.matches(stream));
+        let over = self.config.override_for(stream);
         self.slots.push(StreamSlot {
             key: StreamKey::new(stream.node, stream.channel),
             declared: false,
@@ -668,7 +676,7 @@ impl Dispatcher<'_> {
             queue: VecDeque::new(),
             in_flight: false,
             warm: WarmState::default(),
-            basis: over.and_then(|o| o.basis).unwrap_or(self.config.basis),
+            basis: self.config.basis_for(stream),
             settings: over
                 .and_then(|o| o.solver.clone())
                 .map(Arc::new)
